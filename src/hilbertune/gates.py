@@ -1,0 +1,123 @@
+"""Gate matrices and their batched application to statevectors.
+
+First stage of the data flow after the encoding description: everything here acts on a
+batch of states ``states: complex array of shape [batch, 2**n]`` and never builds a full
+``2**n x 2**n`` matrix. Qubit 0 is the most significant bit of the basis index.
+
+Conventions (common practice): ``RX(t) = exp(-i t X / 2)``, ``RY(t) = exp(-i t Y / 2)``,
+``RZ(t) = exp(-i t Z / 2)``, ``ZZ(t) = exp(-i t Z(x)Z / 2)``, ``CZ = diag(1, 1, 1, -1)``.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import jax.numpy as jnp
+
+HADAMARD = np.array([[1.0, 1.0], [1.0, -1.0]]) / np.sqrt(2.0)
+PAULI_X = np.array([[0.0, 1.0], [1.0, 0.0]])
+PAULI_Y = np.array([[0.0, -1.0j], [1.0j, 0.0]])
+PAULI_Z = np.array([[1.0, 0.0], [0.0, -1.0]])
+
+
+def rotation_matrices(axis: str, angles, dtype=jnp.complex64):
+    """Batched rotation matrices.
+
+    Args:
+      axis: one of ``"x"``, ``"y"``, ``"z"``.
+      angles: real array of shape [batch].
+      dtype: complex dtype of the result.
+
+    Returns:
+      complex array of shape [batch, 2, 2].
+    """
+    half = angles / 2
+    c = jnp.cos(half).astype(dtype)
+    s = jnp.sin(half).astype(dtype)
+    zero = jnp.zeros_like(c)
+    if axis == "x":
+        rows = [[c, -1j * s], [-1j * s, c]]
+    elif axis == "y":
+        rows = [[c, -s], [s, c]]
+    elif axis == "z":
+        rows = [[c - 1j * s, zero], [zero, c + 1j * s]]
+    else:
+        raise ValueError(f"unknown rotation axis {axis!r}; use 'x', 'y' or 'z'")
+    return jnp.stack([jnp.stack(r, axis=-1) for r in rows], axis=-2)
+
+
+def apply_one_qubit(states, matrices, qubit: int, n_qubits: int):
+    """Apply a 2x2 gate (one per state, or one shared) to ``qubit``.
+
+    Reshape-and-contract: the state is viewed as [batch, 2**qubit, 2, 2**(n-qubit-1)] and
+    only the middle axis is contracted, so the cost is O(batch * 2**n).
+
+    Args:
+      states: complex array of shape [batch, 2**n].
+      matrices: complex array of shape [batch, 2, 2] or [2, 2].
+    """
+    batch = states.shape[0]
+    view = states.reshape(batch, 2**qubit, 2, 2 ** (n_qubits - qubit - 1))
+    if matrices.ndim == 2:
+        out = jnp.einsum("ac,bicj->biaj", matrices, view)
+    else:
+        out = jnp.einsum("bac,bicj->biaj", matrices, view)
+    return out.reshape(batch, 2**n_qubits)
+
+
+def basis_bits(n_qubits: int) -> np.ndarray:
+    """Bits of every basis index: int array of shape [2**n, n], qubit 0 most significant."""
+    index = np.arange(2**n_qubits)
+    shifts = np.arange(n_qubits - 1, -1, -1)
+    return (index[:, None] >> shifts[None, :]) & 1
+
+
+def parity_signs(n_qubits: int, qubit_sets) -> np.ndarray:
+    """Eigenvalues of Z-strings on every basis state.
+
+    Args:
+      qubit_sets: sequence of K tuples of qubits; each names the Z-string prod_{q in set} Z_q.
+
+    Returns:
+      float array of shape [K, 2**n] with entries +1 / -1.
+    """
+    bits = basis_bits(n_qubits)
+    signs = np.empty((len(qubit_sets), 2**n_qubits))
+    for k, qubits in enumerate(qubit_sets):
+        parity = bits[:, list(qubits)].sum(axis=1) % 2
+        signs[k] = 1.0 - 2.0 * parity
+    return signs
+
+
+def cz_signs(n_qubits: int, pairs) -> np.ndarray:
+    """Diagonal of a product of CZ gates on ``pairs``: float array of shape [2**n]."""
+    bits = basis_bits(n_qubits)
+    diagonal = np.ones(2**n_qubits)
+    for a, b in pairs:
+        diagonal *= 1.0 - 2.0 * (bits[:, a] & bits[:, b])
+    return diagonal
+
+
+def cnot_permutation(n_qubits: int, control: int, target: int) -> np.ndarray:
+    """Index map of a CNOT: ``new_state = state[perm]``; int array of shape [2**n]."""
+    index = np.arange(2**n_qubits)
+    control_bit = (index >> (n_qubits - 1 - control)) & 1
+    return index ^ (control_bit << (n_qubits - 1 - target))
+
+
+def apply_phases(states, angles, signs, fixed_diagonal=None):
+    """Apply a whole layer of commuting diagonal gates as one phase vector.
+
+    The layer is ``prod_k exp(-i angles_k / 2 * Z-string_k)`` (times a fixed +-1 diagonal
+    for CZ gates); its diagonal is ``exp(-i/2 * angles @ signs)``, one real matrix product.
+
+    Args:
+      states: complex array of shape [batch, 2**n].
+      angles: real array of shape [batch, K].
+      signs: +-1 array of shape [K, 2**n] (see ``parity_signs``).
+      fixed_diagonal: optional real array of shape [2**n].
+    """
+    phase = -0.5 * (angles @ signs)
+    diagonal = jnp.exp(1j * phase).astype(states.dtype)
+    if fixed_diagonal is not None:
+        diagonal = diagonal * fixed_diagonal.astype(states.dtype)
+    return states * diagonal

@@ -1,0 +1,325 @@
+"""Quantum kernels from encoded states: fidelity, closed-form product, projected.
+
+Data flow: ``encode_states`` gives S of shape [N, 2**n] once; the fidelity Gram is then one
+complex matrix product ``|S_a S_b^H|**2`` per block of rows, never a circuit per pair.
+Encodings without entangling gates use the closed form (a product of per-qubit overlaps),
+so hundreds of qubits work. Everything here is pure JAX except ``FrozenKernel`` (a
+callable for scikit-learn) and the memory-budget helpers.
+"""
+
+from __future__ import annotations
+
+import functools
+import os
+import re
+
+import numpy as np
+import jax
+import jax.numpy as jnp
+
+from hilbertune import gates
+from hilbertune.circuits import (Blueprint, apply_circuit, check_dtype, encode_states,
+                                 is_product, product_factors, require_state_memory,
+                                 validate_features)
+from hilbertune.errors import InvalidInputError, ResourceLimitError
+
+_UNITS = {"": 1, "b": 1, "kb": 10**3, "mb": 10**6, "gb": 10**9, "kib": 2**10,
+          "mib": 2**20, "gib": 2**30}
+
+
+def resolve_memory_budget(budget=None) -> int:
+    """Memory budget in bytes from an int, a string such as ``"2GiB"``, or None.
+
+    None means half the physical memory, at most 8 GiB (common practice: leave room for
+    the rest of the process and the copies XLA makes).
+    """
+    if budget is None:
+        try:
+            physical = os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES")
+        except (ValueError, OSError, AttributeError):
+            physical = 8 * 2**30
+        return int(min(8 * 2**30, physical // 2))
+    if isinstance(budget, str):
+        match = re.fullmatch(r"\s*([0-9]*\.?[0-9]+)\s*([a-zA-Z]*)\s*", budget)
+        unit = match.group(2).lower() if match else None
+        if not match or unit not in _UNITS:
+            raise InvalidInputError(f"memory budget {budget!r} not understood; write e.g. "
+                                    "'2GiB', '500MB' or a number of bytes")
+        budget = float(match.group(1)) * _UNITS[unit]
+    if not budget > 0:
+        raise InvalidInputError(f"memory budget must be positive, got {budget!r}")
+    return int(budget)
+
+
+# --------------------------------------------------------------------------- fidelity
+
+@jax.jit
+def _gram_block(states_a, states_b):
+    overlap = jnp.matmul(states_a, jnp.conj(states_b).T)
+    return jnp.real(overlap) ** 2 + jnp.imag(overlap) ** 2
+
+
+def fidelity_gram(states_a, states_b=None, *, block_rows: int | None = None):
+    """Fidelity kernel ``K_ij = |<a_i|b_j>|^2`` from states.
+
+    Args:
+      states_a: complex array of shape [N_a, 2**n].
+      states_b: complex array of shape [N_b, 2**n]; None for the symmetric train Gram.
+      block_rows: rows of ``states_a`` per matrix product (bounds the complex temporary).
+
+    Returns:
+      real array of shape [N_a, N_b].
+    """
+    symmetric = states_b is None
+    states_b = states_a if symmetric else states_b
+    if block_rows is None or block_rows >= states_a.shape[0]:
+        gram = _gram_block(states_a, states_b)
+    else:
+        gram = jnp.concatenate([_gram_block(states_a[i:i + block_rows], states_b)
+                                for i in range(0, states_a.shape[0], block_rows)])
+    if symmetric:
+        # exact symmetry and unit diagonal: rounding in the product breaks both slightly
+        gram = 0.5 * (gram + gram.T)
+        gram = gram.at[jnp.diag_indices(gram.shape[0])].set(1.0)
+    return gram
+
+
+def bloch_vectors(factors):
+    """Bloch vectors of per-qubit states: real array [N, n, 3] from complex [N, n, 2]."""
+    a0, a1 = factors[..., 0], factors[..., 1]
+    cross = jnp.conj(a0) * a1
+    return jnp.stack([2 * jnp.real(cross), 2 * jnp.imag(cross),
+                      jnp.abs(a0) ** 2 - jnp.abs(a1) ** 2], axis=-1)
+
+
+@jax.jit
+def _product_block(bloch_a, bloch_b):
+    # |<a|b>|^2 = (1 + r_a . r_b) / 2 for pure qubit states (Nielsen & Chuang, Ex. 4.8 / the
+    # Bloch-sphere identity tr(rho sigma) = (1 + r.s)/2); the kernel multiplies over qubits.
+    def one_qubit(acc, q):
+        dots = bloch_a[:, q, :] @ bloch_b[:, q, :].T
+        return acc * (0.5 + 0.5 * dots), None
+
+    init = jnp.ones((bloch_a.shape[0], bloch_b.shape[0]), bloch_a.dtype)
+    out, _ = jax.lax.scan(one_qubit, init, jnp.arange(bloch_a.shape[1]))
+    return out
+
+
+def product_gram(factors_a, factors_b=None, *, block_rows: int | None = 1024):
+    """Closed-form fidelity kernel of product states: ``prod_q |<a_q|b_q>|^2``.
+
+    Args:
+      factors_a: complex array of shape [N_a, n, 2] (see ``product_factors``).
+      factors_b: complex array of shape [N_b, n, 2]; None for the symmetric Gram.
+    """
+    symmetric = factors_b is None
+    bloch_a = bloch_vectors(factors_a)
+    bloch_b = bloch_a if symmetric else bloch_vectors(factors_b)
+    rows = bloch_a.shape[0] if block_rows is None else block_rows
+    gram = jnp.concatenate([_product_block(bloch_a[i:i + rows], bloch_b)
+                            for i in range(0, bloch_a.shape[0], rows)])
+    if symmetric:
+        gram = 0.5 * (gram + gram.T)
+        gram = gram.at[jnp.diag_indices(gram.shape[0])].set(1.0)
+    return gram
+
+
+def _block_rows_for(n_rows_b: int, budget_bytes: int, itemsize: int) -> int:
+    # one complex temporary [rows, N_b] plus the real output rows
+    per_row = n_rows_b * (itemsize + itemsize // 2)
+    return max(1, int(budget_bytes // max(per_row, 1)))
+
+
+def quantum_gram(blueprint: Blueprint, params: dict, X_a, X_b=None, *, dtype=jnp.complex64,
+                 memory_budget=None, chunk_size: int | None = None, method: str = "auto"):
+    """Fidelity Gram of an encoding on data, with the memory budget checked first.
+
+    Args:
+      X_a: float array of shape [N_a, F]; X_b: [N_b, F] or None (symmetric train Gram).
+      method: "auto" (closed form for product encodings), "statevector" or "product".
+      memory_budget: bytes or a string such as "4GiB"; None for the default.
+
+    Returns:
+      real array of shape [N_a, N_b].
+    """
+    dtype = check_dtype(dtype)
+    if method not in ("auto", "statevector", "product"):
+        raise InvalidInputError(f"method must be 'auto', 'statevector' or 'product', "
+                                f"got {method!r}")
+    X_a = validate_features(blueprint, X_a, name="X_a")
+    X_b = None if X_b is None else validate_features(blueprint, X_b, name="X_b")
+    use_product = method == "product" or (method == "auto" and is_product(blueprint))
+    if use_product:
+        fa = product_factors(blueprint, params, X_a, dtype=dtype)
+        fb = None if X_b is None else product_factors(blueprint, params, X_b, dtype=dtype)
+        return product_gram(fa, fb)
+    budget = resolve_memory_budget(memory_budget)
+    n_b = X_a.shape[0] if X_b is None else X_b.shape[0]
+    n_states = X_a.shape[0] + (0 if X_b is None else n_b)
+    used = require_state_memory(n_states, blueprint, budget, dtype)
+    output = X_a.shape[0] * n_b * jnp.dtype(dtype).itemsize // 2
+    if used + output > budget:
+        raise ResourceLimitError(
+            f"a {X_a.shape[0]} x {n_b} Gram on {blueprint.n_qubits} qubits needs "
+            f"{(used + output) / 2**30:.2f} GiB (states + matrix) but the budget is "
+            f"{budget / 2**30:.2f} GiB; use Nystroem landmarks, fewer samples or raise the "
+            "budget")
+    rows = _block_rows_for(n_b, budget - used - output, jnp.dtype(dtype).itemsize)
+    sa = encode_states(blueprint, params, X_a, dtype=dtype, chunk_size=chunk_size)
+    sb = None if X_b is None else encode_states(blueprint, params, X_b, dtype=dtype,
+                                                chunk_size=chunk_size)
+    return fidelity_gram(sa, sb, block_rows=rows)
+
+
+def gram_for_training(blueprint: Blueprint, params: dict, X_a, X_b=None):
+    """Differentiable Gram for objectives: no validation, states or closed form in JAX.
+
+    ``X_a``/``X_b`` must already be validated float arrays; ``params`` may be traced.
+    """
+    if is_product(blueprint):
+        fa = product_factors(blueprint, params, X_a)
+        fb = fa if X_b is None else product_factors(blueprint, params, X_b)
+        return _product_block(bloch_vectors(fa), bloch_vectors(fb))
+    sa = encode_states(blueprint, params, X_a)
+    sb = sa if X_b is None else encode_states(blueprint, params, X_b)
+    return _gram_block(sa, sb)
+
+
+# --------------------------------------------------------------------------- projected
+
+def pauli_expectations(states, n_qubits: int):
+    """Per-qubit <X>, <Y>, <Z> of each state: real array [N, n, 3] from [N, 2**n].
+
+    Reads the 1-qubit reduced density matrix rho_q (partial trace over the others):
+    rho = (I + <X> X + <Y> Y + <Z> Z) / 2, so <X> = 2 Re rho_01, <Y> = -2 Im rho_01,
+    <Z> = rho_00 - rho_11.
+    """
+    batch = states.shape[0]
+    out = []
+    for q in range(n_qubits):
+        view = states.reshape(batch, 2**q, 2, 2 ** (n_qubits - q - 1))
+        rho = jnp.einsum("biaj,bicj->bac", view, jnp.conj(view))
+        out.append(jnp.stack([2 * jnp.real(rho[:, 0, 1]), -2 * jnp.imag(rho[:, 0, 1]),
+                              jnp.real(rho[:, 0, 0] - rho[:, 1, 1])], axis=-1))
+    return jnp.stack(out, axis=1)
+
+
+def encoding_expectations(blueprint: Blueprint, params: dict, X, *, dtype=jnp.complex64,
+                          chunk_size: int | None = None):
+    """Pauli expectations [N, n, 3] of the encoded states (closed form for product ones)."""
+    if is_product(blueprint):
+        return bloch_vectors(product_factors(blueprint, params, X, dtype=dtype))
+    return pauli_expectations(encode_states(blueprint, params, X, dtype=dtype,
+                                            chunk_size=chunk_size), blueprint.n_qubits)
+
+
+@jax.jit
+def projected_gram_from_expectations(exp_a, exp_b, gamma):
+    """Projected quantum kernel (Huang et al., Nat. Commun. 12, 2631 (2021), Eq. 9).
+
+    ``k = exp(-gamma * sum_q ||rho_q(x) - rho_q(x')||_F^2)`` with
+    ``||rho - rho'||_F^2 = 1/2 * sum_P (<P> - <P>')^2`` for P in X, Y, Z.
+
+    Args:
+      exp_a: real array [N_a, n, 3]; exp_b: real array [N_b, n, 3]; gamma: positive float.
+    """
+    a = exp_a.reshape(exp_a.shape[0], -1)
+    b = exp_b.reshape(exp_b.shape[0], -1)
+    sq = (jnp.sum(a * a, 1)[:, None] + jnp.sum(b * b, 1)[None, :] - 2 * a @ b.T)
+    return jnp.exp(-gamma * 0.5 * jnp.maximum(sq, 0.0))
+
+
+def projected_gram(blueprint: Blueprint, params: dict, X_a, X_b=None, *, gamma: float = 1.0,
+                   dtype=jnp.complex64):
+    """Projected quantum kernel of an encoding on data: real array [N_a, N_b]."""
+    if not gamma > 0:
+        raise InvalidInputError(f"gamma must be positive, got {gamma!r}")
+    X_a = validate_features(blueprint, X_a, name="X_a")
+    e_a = encoding_expectations(blueprint, params, X_a, dtype=dtype)
+    e_b = e_a if X_b is None else encoding_expectations(
+        blueprint, params, validate_features(blueprint, X_b, name="X_b"), dtype=dtype)
+    return projected_gram_from_expectations(e_a, e_b, gamma)
+
+
+# --------------------------------------------------------------------------- circuits as references
+
+def interference_zero_probability(blueprint: Blueprint, params: dict, x, x_prime, *,
+                                  part: str = "real"):
+    """P(ancilla = 0) of the one-ancilla interference circuit (Hadamard test).
+
+    Simulates n + 1 qubits: H on the ancilla; U(x) controlled on ancilla = 0 and U(x')
+    controlled on ancilla = 1; (S^dagger on the ancilla for the imaginary part); H; measure
+    the ancilla. Standard identity: P(0) = 1/2 + 1/2 Re<psi(x)|psi(x')> (Im for part="imag").
+
+    Args:
+      x, x_prime: float arrays of shape [F] (or [B, F] for a batch of pairs).
+
+    Returns:
+      real array of shape [] (or [B]).
+    """
+    if part not in ("real", "imag"):
+        raise InvalidInputError(f"part must be 'real' or 'imag', got {part!r}")
+    x = np.atleast_2d(np.asarray(x, float))
+    x_prime = np.atleast_2d(np.asarray(x_prime, float))
+    n, batch = blueprint.n_qubits, x.shape[0]
+    dim = 2**n
+    full = jnp.zeros((batch, 2 * dim), jnp.complex64).at[:, 0].set(1.0)
+    full = gates.apply_one_qubit(full, jnp.asarray(gates.HADAMARD, jnp.complex64), 0, n + 1)
+    half0 = apply_circuit(blueprint, params, x, full[:, :dim])  # ancilla 0 branch
+    half1 = apply_circuit(blueprint, params, x_prime, full[:, dim:])  # ancilla 1 branch
+    if part == "imag":
+        half1 = -1j * half1
+    full = jnp.concatenate([half0, half1], axis=1)
+    full = gates.apply_one_qubit(full, jnp.asarray(gates.HADAMARD, jnp.complex64), 0, n + 1)
+    p0 = jnp.sum(jnp.abs(full[:, :dim]) ** 2, axis=1)
+    return p0 if batch > 1 else p0[0]
+
+
+def compute_uncompute_probability(blueprint: Blueprint, params: dict, x, x_prime):
+    """|<0|U(x')^dagger U(x)|0>|^2 simulated per pair (the slow reference path).
+
+    Args:
+      x, x_prime: float arrays of shape [B, F] (pairs row by row).
+
+    Returns:
+      real array of shape [B].
+    """
+    x = jnp.asarray(x, jnp.float32)
+    batch = x.shape[0]
+    zero = jnp.zeros((batch, 2**blueprint.n_qubits), jnp.complex64).at[:, 0].set(1.0)
+    states = apply_circuit(blueprint, params, x, zero)
+    states = apply_circuit(blueprint, params, jnp.asarray(x_prime, jnp.float32), states,
+                           inverse=True)
+    return jnp.abs(states[:, 0]) ** 2
+
+
+# --------------------------------------------------------------------------- scikit-learn hand-off
+
+class FrozenKernel:
+    """A fixed encoding + parameters as a callable kernel: ``SVC(kernel=FrozenKernel(...))``.
+
+    ``kernel(A, B)`` returns the fidelity Gram as a float64 numpy array of shape
+    [len(A), len(B)]; ``kind="projected"`` returns the projected kernel instead.
+    """
+
+    def __init__(self, blueprint: Blueprint, params: dict, *, kind: str = "fidelity",
+                 gamma: float = 1.0, memory_budget=None):
+        if kind not in ("fidelity", "projected"):
+            raise InvalidInputError(f"kind must be 'fidelity' or 'projected', got {kind!r}")
+        self.blueprint = blueprint
+        self.params = jax.tree_util.tree_map(np.asarray, params)
+        self.kind = kind
+        self.gamma = gamma
+        self.memory_budget = memory_budget
+
+    def __call__(self, A, B=None):
+        if self.kind == "projected":
+            gram = projected_gram(self.blueprint, self.params, A, B, gamma=self.gamma)
+        else:
+            gram = quantum_gram(self.blueprint, self.params, A, B,
+                                memory_budget=self.memory_budget)
+        return np.asarray(gram, dtype=np.float64)
+
+    def __repr__(self):
+        return (f"FrozenKernel(family={self.blueprint.family!r}, "
+                f"qubits={self.blueprint.n_qubits}, kind={self.kind!r})")
