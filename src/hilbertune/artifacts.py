@@ -1,0 +1,173 @@
+"""Safe reading and writing of run-directory files.
+
+Every file is written to a temporary name in the same folder and renamed into place, so a
+crash never leaves a half-written artifact. Arrays go to ``.npz`` without pickle; metadata
+to JSON/TOML/CSV. ``manifest.json`` holds the SHA-256 of every artifact and is checked on
+load, so a modified file is refused by name.
+"""
+
+from __future__ import annotations
+
+import csv
+import hashlib
+import io
+import json
+import os
+import platform
+import sys
+import tempfile
+from importlib import metadata
+from pathlib import Path
+
+import numpy as np
+
+from hilbertune.errors import ArtifactError
+
+FORMAT_VERSION = 1
+MANIFEST = "manifest.json"
+
+
+def write_bytes(path, payload: bytes) -> None:
+    """Write ``payload`` to ``path`` atomically (temporary file + rename)."""
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+    try:
+        with os.fdopen(fd, "wb") as handle:
+            handle.write(payload)
+            handle.flush()
+            os.fsync(handle.fileno())
+        os.replace(tmp, path)
+    except BaseException:
+        if os.path.exists(tmp):
+            os.unlink(tmp)
+        raise
+
+
+def write_text(path, text: str) -> None:
+    write_bytes(path, text.encode("utf-8"))
+
+
+def write_json(path, obj) -> None:
+    write_text(path, json.dumps(obj, indent=2, sort_keys=True, default=_json_default) + "\n")
+
+
+def _json_default(obj):
+    if isinstance(obj, np.generic):
+        return obj.item()
+    if isinstance(obj, np.ndarray):
+        return obj.tolist()
+    raise TypeError(f"not JSON serializable: {type(obj).__name__}")
+
+
+def write_npz(path, arrays: dict) -> None:
+    """Arrays to ``.npz`` (no pickle: object arrays are refused)."""
+    buffer = io.BytesIO()
+    clean = {}
+    for key, value in arrays.items():
+        value = np.asarray(value)
+        if value.dtype == object:
+            raise TypeError(f"array {key!r} has dtype object; store strings as fixed-width 'U'")
+        clean[key] = value
+    np.savez(buffer, **clean)
+    write_bytes(path, buffer.getvalue())
+
+
+def read_npz(path) -> dict:
+    try:
+        with np.load(path, allow_pickle=False) as data:
+            return {k: data[k] for k in data.files}
+    except (OSError, ValueError) as exc:
+        raise ArtifactError(f"{Path(path).name} could not be read ({exc}); the run directory "
+                            "is damaged: rerun with `hilbertune reproduce`") from None
+
+
+def read_json(path) -> dict:
+    try:
+        return json.loads(Path(path).read_text(encoding="utf-8"))
+    except (OSError, UnicodeDecodeError, json.JSONDecodeError) as exc:
+        raise ArtifactError(f"{Path(path).name} could not be read ({exc}); the run directory "
+                            "is damaged") from None
+
+
+def write_csv_rows(path, rows: list, columns: list) -> None:
+    buffer = io.StringIO()
+    writer = csv.DictWriter(buffer, fieldnames=columns, extrasaction="ignore",
+                            lineterminator="\n")
+    writer.writeheader()
+    for row in rows:
+        writer.writerow({k: _csv_cell(row.get(k, "")) for k in columns})
+    write_text(path, buffer.getvalue())
+
+
+def _csv_cell(value):
+    if isinstance(value, float):
+        return repr(value)
+    return value
+
+
+def sha256_file(path) -> str:
+    digest = hashlib.sha256()
+    with open(path, "rb") as handle:
+        for block in iter(lambda: handle.read(1 << 20), b""):
+            digest.update(block)
+    return digest.hexdigest()
+
+
+def library_versions() -> dict:
+    versions = {"python": sys.version.split()[0]}
+    for name in ("hilbertune", "jax", "jaxlib", "numpy", "scipy", "scikit-learn", "optax"):
+        try:
+            versions[name] = metadata.version(name)
+        except metadata.PackageNotFoundError:
+            versions[name] = "not installed"
+    return versions
+
+
+def write_manifest(run_dir, *, seed: int, data_sha256: str, artifacts: list) -> dict:
+    """Hash every artifact and write ``manifest.json`` last."""
+    run_dir = Path(run_dir)
+    manifest = {
+        "format_version": FORMAT_VERSION,
+        "tool": "hilbertune",
+        "versions": library_versions(),
+        "platform": {"system": platform.system(), "machine": platform.machine(),
+                     "platform": platform.platform(), "processor": platform.processor()},
+        "seed": seed,
+        "data_sha256": data_sha256,
+        "artifacts": {name: sha256_file(run_dir / name) for name in sorted(artifacts)},
+    }
+    write_json(run_dir / MANIFEST, manifest)
+    return manifest
+
+
+def verify_run(run_dir) -> dict:
+    """Check a run directory against its manifest; returns the manifest.
+
+    Raises ArtifactError naming the first missing or modified file, or a newer format.
+    """
+    run_dir = Path(run_dir)
+    if not run_dir.is_dir():
+        raise ArtifactError(f"run directory {str(run_dir)!r} not found; pass the folder that "
+                            "`hilbertune fit --out` wrote")
+    path = run_dir / MANIFEST
+    if not path.is_file():
+        raise ArtifactError(f"{str(run_dir)!r} has no {MANIFEST}: it is not a finished run "
+                            "directory (an interrupted run resumes with `hilbertune fit` and "
+                            "the same --out)")
+    manifest = read_json(path)
+    version = manifest.get("format_version")
+    if not isinstance(version, int) or version > FORMAT_VERSION:
+        raise ArtifactError(f"{str(run_dir)!r} was written by a newer hilbertune (format "
+                            f"{version!r}, this version reads {FORMAT_VERSION}); upgrade "
+                            "hilbertune to read it")
+    for name, digest in manifest.get("artifacts", {}).items():
+        file = run_dir / name
+        if not file.is_file():
+            raise ArtifactError(f"{name} is missing from {str(run_dir)!r}; restore it or rerun "
+                                "the fit")
+        if sha256_file(file) != digest:
+            raise ArtifactError(f"{name} in {str(run_dir)!r} was modified after the run (its "
+                                "SHA-256 differs from manifest.json); restore the original or "
+                                "rerun the fit")
+    return manifest

@@ -1,0 +1,290 @@
+"""Command line: a thin shell over runs, report, export and sweeps.
+
+Exit codes: 0 ok, 1 failure during work, 2 bad usage or bad input (one line on stderr,
+no traceback). ``--json`` prints one machine-readable JSON object on stdout.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import sys
+import time
+from pathlib import Path
+
+from hilbertune.errors import HilbertuneError, InvalidInputError
+
+EXIT_OK, EXIT_FAILURE, EXIT_USAGE = 0, 1, 2
+
+
+class _Parser(argparse.ArgumentParser):
+    """argparse, but usage errors are one line and exit 2."""
+
+    def error(self, message):
+        raise InvalidInputError(f"{message} (see `{self.prog} --help`)")
+
+
+def _default_out(kind: str) -> Path:
+    return Path("runs") / f"{kind}-{time.strftime('%Y%m%d-%H%M%S')}"
+
+
+def _add_common(p):
+    p.add_argument("--quiet", action="store_true", help="print nothing but errors")
+    p.add_argument("--json", action="store_true", help="print one JSON object with the results")
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = _Parser(prog="hilbertune", description=(
+        "Learn a data-encoding circuit for a quantum kernel on your classification data, "
+        "diagnose it, compare it with tuned classical kernels, estimate its hardware cost, "
+        "and export it. Everything is simulated on the CPU."))
+    parser.add_argument("--version", action="version", version=_version())
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
+
+    demo = sub.add_parser("demo", help="run the whole job on an invented built-in dataset")
+    demo.add_argument("--out", type=Path, help="run directory (default: runs/demo-<time>)")
+    demo.add_argument("--seed", type=int, default=0, help="random seed (default 0)")
+    demo.add_argument("--overwrite", action="store_true",
+                      help="write into an existing run directory")
+    _add_common(demo)
+
+    fit = sub.add_parser("fit", help="learn, freeze, evaluate and report on a dataset")
+    fit.add_argument("config", nargs="?", type=Path, help="TOML configuration file")
+    fit.add_argument("--data", help="CSV file with a header row, or a scikit-learn dataset "
+                     "name (iris, wine, breast_cancer, digits, moons, circles), or 'demo'")
+    fit.add_argument("--target", help="label column of the CSV")
+    fit.add_argument("--qubits", type=int, help="number of qubits")
+    fit.add_argument("--seed", type=int, help="random seed")
+    fit.add_argument("--out", type=Path, help="run directory (default: runs/fit-<time>)")
+    fit.add_argument("--set", action="append", default=[], metavar="KEY=VALUE",
+                     help="override a config key, e.g. --set training.steps=100 (repeatable)")
+    fit.add_argument("--drop-missing", action="store_true",
+                     help="drop CSV rows with missing values instead of failing")
+    fit.add_argument("--overwrite", action="store_true",
+                     help="write into an existing run directory (other files are kept)")
+    fit.add_argument("--help-config", action="store_true",
+                     help="list every config key with its default and exit")
+    _add_common(fit)
+
+    predict = sub.add_parser("predict", help="apply a finished run to new rows of a CSV")
+    predict.add_argument("run_dir", type=Path)
+    predict.add_argument("csv", type=Path, help="CSV with the same feature columns")
+    predict.add_argument("--out", type=Path, help="write predictions here (default: stdout)")
+    _add_common(predict)
+
+    report = sub.add_parser("report", help="rebuild report.html of a run from its artifacts")
+    report.add_argument("run_dir", type=Path)
+    _add_common(report)
+
+    export = sub.add_parser("export", help="export the learned circuit")
+    export.add_argument("run_dir", type=Path)
+    export.add_argument("--format", default="qasm3", choices=["qasm3"])
+    export.add_argument("--kernel-circuit", action="store_true",
+                        help="export the circuit that estimates one kernel entry instead")
+    export.add_argument("--out", type=Path, help="file to write (default: print)")
+    _add_common(export)
+
+    reproduce = sub.add_parser("reproduce", help="rerun a run from its config and seed and "
+                               "compare parameters and metrics")
+    reproduce.add_argument("run_dir", type=Path)
+    reproduce.add_argument("--keep", type=Path, help="keep the rerun in this directory")
+    _add_common(reproduce)
+
+    sweep = sub.add_parser("sweep", help="run many configurations from a sweep TOML")
+    sweep.add_argument("description", type=Path, help="sweep TOML file")
+    sweep.add_argument("--out", type=Path, help="sweep directory (default: runs/sweep-<time>)")
+    sweep.add_argument("--workers", type=int, default=1, help="parallel trials (default 1)")
+    sweep.add_argument("--scheduler", help="Dask scheduler address tcp://HOST:PORT, or "
+                       "'local' for a cluster on this machine")
+    _add_common(sweep)
+    return parser
+
+
+def _version() -> str:
+    from hilbertune import __version__
+
+    return f"hilbertune {__version__}"
+
+
+class _Console:
+    def __init__(self, quiet: bool, as_json: bool):
+        self.quiet = quiet or as_json
+        self.as_json = as_json
+
+    def say(self, text: str) -> None:
+        if not self.quiet:
+            print(text, flush=True)
+
+
+def _fit_config(args):
+    from hilbertune import config as cfg
+
+    user = cfg.load_toml(args.config) if args.config else {}
+    overrides = []
+    if args.data:
+        known = ("demo", "iris", "wine", "breast_cancer", "digits", "moons", "circles")
+        if args.data in known:
+            overrides.append(("data.source", args.data))
+        else:
+            overrides += [("data.source", "csv"), ("data.path", str(args.data))]
+    if args.target:
+        overrides.append(("data.target", args.target))
+    if args.drop_missing:
+        overrides.append(("data.drop_missing", True))
+    if args.qubits is not None:
+        overrides.append(("encoding.qubits", args.qubits))
+    if args.seed is not None:
+        overrides.append(("seed", args.seed))
+    overrides += [cfg.parse_assignment(item) for item in args.set]
+    return cfg.resolve_config(user, overrides)
+
+
+def _print_summary(console, summary, run_dir):
+    if console.quiet:
+        return
+    from hilbertune.runs import summary_lines
+
+    for line in summary_lines(summary):
+        console.say(line)
+    console.say(f"Report: {Path(run_dir) / 'report.html'}")
+
+
+def _cmd_demo(args, console):
+    from hilbertune import config as cfg
+    from hilbertune.runs import execute_fit
+
+    config = cfg.resolve_config({"seed": args.seed, "data": {"source": "demo"}})
+    out = args.out or _default_out("demo")
+    console.say(f"hilbertune demo: invented dataset, {config['encoding']['qubits']} qubits, "
+                f"run directory {out}")
+    summary = execute_fit(config, out, overwrite=args.overwrite, progress=not console.quiet)
+    _print_summary(console, summary, out)
+    return {"run_dir": str(out), "summary": summary}
+
+
+def _cmd_fit(args, console):
+    from hilbertune import config as cfg
+    from hilbertune.runs import execute_fit
+
+    if args.help_config:
+        print(cfg.describe())
+        return None
+    config = _fit_config(args)
+    out = args.out or _default_out("fit")
+    summary = execute_fit(config, out, overwrite=args.overwrite, progress=not console.quiet)
+    _print_summary(console, summary, out)
+    return {"run_dir": str(out), "summary": summary}
+
+
+def _cmd_predict(args, console):
+    from hilbertune.runs import predict_csv
+
+    rows = predict_csv(args.run_dir, args.csv)
+    text = "row,prediction\n" + "".join(f"{i},{label}\n" for i, label in enumerate(rows))
+    if args.out:
+        from hilbertune.artifacts import write_text
+
+        write_text(args.out, text)
+        console.say(f"{len(rows)} predictions written to {args.out}")
+    elif not args.json:
+        sys.stdout.write(text)
+    return {"predictions": [str(r) for r in rows]}
+
+
+def _cmd_report(args, console):
+    from hilbertune.artifacts import verify_run
+    from hilbertune.report import build_report
+
+    verify_run(args.run_dir)
+    path = build_report(args.run_dir)
+    console.say(f"Report rebuilt: {path}")
+    return {"report": str(path)}
+
+
+def _cmd_export(args, console):
+    from hilbertune.runs import export_circuit
+
+    text, resources = export_circuit(args.run_dir, kernel_circuit=args.kernel_circuit)
+    if args.out:
+        from hilbertune.artifacts import write_text
+
+        write_text(args.out, text)
+        console.say(f"OpenQASM 3 written to {args.out}")
+    elif not args.json:
+        sys.stdout.write(text)
+    console.say("resources: " + ", ".join(f"{k} {v}" for k, v in resources.items()))
+    return {"resources": resources, "qasm": text}
+
+
+def _cmd_reproduce(args, console):
+    from hilbertune.runs import reproduce_run
+
+    same, differences = reproduce_run(args.run_dir, keep=args.keep,
+                                      progress=not console.quiet)
+    if same:
+        console.say("reproduced: parameters and metrics are identical")
+    else:
+        for line in differences:
+            print(f"difference: {line}", file=sys.stderr)
+    return {"identical": same, "differences": differences}, (EXIT_OK if same else EXIT_FAILURE)
+
+
+def _cmd_sweep(args, console):
+    from hilbertune import config as cfg
+    from hilbertune.sweeps import run_sweep
+
+    description = cfg.load_toml(args.description)
+    out = args.out or _default_out("sweep")
+    if args.workers < 1:
+        raise InvalidInputError(f"--workers must be at least 1, got {args.workers}")
+    rows = run_sweep(description, out, workers=args.workers, scheduler=args.scheduler,
+                     progress=not console.quiet)
+    failed = sum(1 for r in rows if r.get("status") != "ok")
+    console.say(f"{len(rows)} trials, {failed} failed; table: {Path(out) / 'results.csv'}")
+    return {"sweep_dir": str(out), "trials": len(rows), "failed": failed}
+
+
+COMMANDS = {"demo": _cmd_demo, "fit": _cmd_fit, "predict": _cmd_predict,
+            "report": _cmd_report, "export": _cmd_export, "reproduce": _cmd_reproduce,
+            "sweep": _cmd_sweep}
+
+
+def main(argv=None) -> int:
+    parser = build_parser()
+    try:
+        args = parser.parse_args(argv)
+        if not args.command:
+            parser.print_help()
+            return EXIT_USAGE
+        console = _Console(args.quiet, args.json)
+        result = COMMANDS[args.command](args, console)
+        code = EXIT_OK
+        if isinstance(result, tuple):
+            result, code = result
+        if args.json and result is not None:
+            print(json.dumps(result, default=str, sort_keys=True))
+        return code
+    except InvalidInputError as exc:
+        print(f"hilbertune: error: {exc}", file=sys.stderr)
+        return EXIT_USAGE
+    except HilbertuneError as exc:
+        print(f"hilbertune: failed: {exc}", file=sys.stderr)
+        return EXIT_FAILURE
+    except KeyboardInterrupt:
+        print("hilbertune: interrupted; finished artifacts and checkpoints are kept, rerun the "
+              "same command to resume", file=sys.stderr)
+        return 130
+    except MemoryError:
+        print("hilbertune: failed: out of memory; use fewer qubits or samples, or a smaller "
+              "compute.memory_budget", file=sys.stderr)
+        return EXIT_FAILURE
+    except OSError as exc:
+        print(f"hilbertune: failed: {exc.strerror or exc} ({exc.filename or ''}); check the "
+              "path and permissions", file=sys.stderr)
+        return EXIT_FAILURE
+
+
+if __name__ == "__main__":
+    os.environ.setdefault("PYTHONWARNINGS", "ignore")
+    sys.exit(main())

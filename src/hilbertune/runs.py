@@ -1,0 +1,477 @@
+"""A run from configuration to run directory: the whole job, as one function.
+
+``execute_fit`` walks the data flow (load -> split/scale on the train part -> encoding ->
+training -> frozen kernel + SVM -> baselines, significance, diagnostics, hardware estimate
+-> artifacts -> report) and writes every artifact atomically. ``predict_csv``,
+``reproduce_run`` and ``export_circuit`` read finished run directories (hashes checked).
+"""
+
+from __future__ import annotations
+
+import math
+import shutil
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+
+from hilbertune import artifacts
+from hilbertune.errors import ArtifactError, InvalidInputError
+
+ARTIFACTS = ("config.toml", "params.npz", "kernels.npz", "history.csv", "summary.json",
+             "report.html", "circuit.qasm")
+HISTORY_COLUMNS = ("step", "objective", "alignment", "validation_objective", "grad_norm",
+                   "learning_rate", "wall_time")
+SIMULATION_CAUTION = ("All quantum kernels here were simulated exactly on a classical computer; "
+                      "a simulated kernel is no evidence about quantum hardware.")
+
+
+# --------------------------------------------------------------------------- building blocks
+
+def load_dataset(config: dict):
+    """The dataset named by ``config['data']``."""
+    from hilbertune import data
+
+    spec = config["data"]
+    source = spec["source"]
+    if source == "demo":
+        return data.invented_demo(n_samples=spec["samples"], seed=config["seed"])
+    if source == "csv":
+        return data.load_csv(spec["path"], spec["target"], drop_missing=spec["drop_missing"])
+    return data.load_bundled(source, n_samples=spec["samples"], seed=config["seed"])
+
+
+def feature_count(config: dict, n_columns: int) -> int:
+    """Features the encoding takes after reduction."""
+    wanted = config["data"]["features"]
+    if wanted:
+        if wanted > n_columns:
+            raise InvalidInputError(f"data.features = {wanted} but the data have only "
+                                    f"{n_columns} feature columns; lower data.features")
+        return wanted
+    enc = config["encoding"]
+    if enc["family"] == "amplitude":
+        return n_columns
+    return min(n_columns, enc["qubits"])
+
+
+def build_blueprint(config: dict, n_features: int):
+    """The encoding circuit a config describes (deterministic; no randomness)."""
+    from hilbertune.encodings import build_encoding
+
+    enc = config["encoding"]
+    family = enc["family"]
+    options = {
+        "angle": {"axis": enc["axis"]},
+        "iqp": {"reps": enc["reps"], "pairs": enc["entangler"]},
+        "layered": {"n_qubits": enc["qubits"], "layers": enc["layers"],
+                    "entangler": enc["entangler"], "entangler_gate": enc["entangler_gate"],
+                    "axes": tuple(enc["axes"])},
+        "amplitude": {"copies": enc["copies"]},
+        "basis": {},
+    }[family]
+    return build_encoding(family, n_features, **options)
+
+
+def training_settings(config: dict):
+    from hilbertune.training import TrainingSettings
+
+    t = config["training"]
+    return TrainingSettings(
+        objective=t["objective"], steps=t["steps"], learning_rate=t["learning_rate"],
+        optimizer=t["optimizer"], schedule=t["schedule"], clip_norm=t["clip_norm"],
+        batch_size=t["batch_size"], validation_fraction=t["validation_fraction"],
+        patience=t["patience"], l2_penalty=t["l2_penalty"], ridge_lambda=t["ridge_lambda"],
+        folds=t["folds"], freeze=tuple(t["freeze"]), checkpoint_every=t["checkpoint_every"])
+
+
+def kernel_pair(config: dict, blueprint, params, X_train, X_test):
+    """(train Gram, test-vs-train Gram) as float64 numpy arrays."""
+    from hilbertune.kernels import projected_gram, quantum_gram
+
+    enc, compute = config["encoding"], config["compute"]
+    if enc["kind"] == "projected":
+        k_train = projected_gram(blueprint, params, X_train, gamma=enc["gamma"])
+        k_test = projected_gram(blueprint, params, X_test, X_train, gamma=enc["gamma"])
+    else:
+        options = {"memory_budget": compute["memory_budget"],
+                   "chunk_size": compute["chunk_size"] or None}
+        k_train = quantum_gram(blueprint, params, X_train, **options)
+        k_test = quantum_gram(blueprint, params, X_test, X_train, **options)
+    return np.asarray(k_train, np.float64), np.asarray(k_test, np.float64)
+
+
+def _fit_svm(config, k_train, y_train, seed):
+    """An SVC on a precomputed kernel with C fixed or tuned by CV on the training part."""
+    from sklearn.svm import SVC
+    from hilbertune.training import tune_svm_c
+
+    C = config["svm"]["C"]
+    tuned = C == 0
+    if tuned:
+        C = tune_svm_c(k_train, y_train, cv=config["svm"]["cv_folds"], seed=seed)
+    model = SVC(kernel="precomputed", C=C).fit(k_train, y_train)
+    return model, float(C), tuned
+
+
+def _accuracy(model, gram, y) -> float:
+    return float(np.mean(model.predict(gram) == y))
+
+
+def _prepare_out_dir(out_dir: Path, overwrite: bool) -> None:
+    if out_dir.exists() and not out_dir.is_dir():
+        raise InvalidInputError(f"--out {str(out_dir)!r} is a file; choose a directory path")
+    if out_dir.is_dir() and any(out_dir.iterdir()):
+        resumable = (out_dir / "checkpoints").is_dir() and not (out_dir / "manifest.json").exists()
+        if not overwrite and not resumable:
+            raise InvalidInputError(f"output directory {str(out_dir)!r} already exists and is not "
+                                    "empty; choose another --out or pass --overwrite (your other "
+                                    "files there are kept)")
+    out_dir.mkdir(parents=True, exist_ok=True)
+
+
+def _check_resume_config(out_dir: Path, config_text: str, overwrite: bool) -> None:
+    saved = out_dir / "config.toml"
+    if saved.exists() and saved.read_text(encoding="utf-8") != config_text:
+        if (out_dir / "checkpoints").is_dir() and not overwrite:
+            raise InvalidInputError(f"{str(out_dir)!r} holds an interrupted run with a different "
+                                    "configuration; resume it with the same settings or choose "
+                                    "another --out")
+        if (out_dir / "checkpoints").is_dir():
+            shutil.rmtree(out_dir / "checkpoints")  # our own checkpoints of another config
+
+
+def _boundary(config, blueprint, params, model, X_train, k_kind):
+    """Decision values on a grid over the training range, for 2-D data only."""
+    from hilbertune.kernels import projected_gram, quantum_gram
+
+    lo, hi = X_train.min(axis=0), X_train.max(axis=0)
+    pad = 0.1 * (hi - lo + 1e-9)
+    xs = np.linspace(lo[0] - pad[0], hi[0] + pad[0], 40)
+    ys = np.linspace(lo[1] - pad[1], hi[1] + pad[1], 40)
+    grid = np.stack(np.meshgrid(xs, ys), axis=-1).reshape(-1, 2)
+    if k_kind == "projected":
+        gram = projected_gram(blueprint, params, grid, X_train, gamma=config["encoding"]["gamma"])
+    else:
+        gram = quantum_gram(blueprint, params, grid, X_train,
+                            memory_budget=config["compute"]["memory_budget"])
+    pred = model.predict(np.asarray(gram, np.float64))
+    classes = list(model.classes_)
+    return xs, ys, np.array([classes.index(p) for p in pred], float).reshape(40, 40)
+
+
+# --------------------------------------------------------------------------- the whole job
+
+def execute_fit(config: dict, out_dir, *, overwrite: bool = False, progress: bool = False) -> dict:
+    """Run the whole job for a resolved config and write a run directory.
+
+    Args:
+      config: from ``config.resolve_config`` (every default filled in).
+      out_dir: run directory; refused if it exists and is not empty, unless ``overwrite``
+        (then only our artifacts are replaced) or it holds an interrupted run of the same
+        config (then training resumes from its last checkpoint).
+
+    Returns:
+      the summary dict (also written to ``summary.json``).
+    """
+    import jax
+
+    from hilbertune import config as cfg
+    from hilbertune import data, diagnostics
+    from hilbertune.circuits import resource_counts
+    from hilbertune.training import starting_params, train_encoding
+
+    started = time.perf_counter()
+    cfg.check_consistency(config)
+    config_text = cfg.dump_toml(config)
+    out_dir = Path(out_dir)
+    seed = config["seed"]
+
+    dataset = load_dataset(config)  # input errors surface before anything is written
+    y_all = np.asarray(dataset.y)
+    n_features = feature_count(config, dataset.X.shape[1])
+    blueprint = build_blueprint(config, n_features)
+    split = data.split_and_scale(dataset.X, y_all, test_fraction=config["data"]["test_fraction"],
+                                 seed=seed, n_components=n_features,
+                                 reduce=config["data"]["reduce"])
+    X_train, X_test = split.X_train, split.X_test
+    y_train, y_test = split.y_train, split.y_test
+    from hilbertune.circuits import require_state_memory
+    from hilbertune.kernels import resolve_memory_budget
+
+    if config["encoding"]["kind"] == "fidelity":
+        require_state_memory(len(X_train) + len(X_test), blueprint,
+                             resolve_memory_budget(config["compute"]["memory_budget"]))
+
+    _prepare_out_dir(out_dir, overwrite)
+    _check_resume_config(out_dir, config_text, overwrite)
+    artifacts.write_text(out_dir / "config.toml", config_text)
+
+    # ---- learn
+    enc = config["encoding"]
+    params0 = starting_params(blueprint, X_train, seed=seed,
+                              bandwidth=enc["bandwidth"] or None, bias_scale=enc["bias_scale"])
+    result = train_encoding(blueprint, X_train, y_train, training_settings(config), seed=seed,
+                            params=params0, checkpoint_dir=out_dir / "checkpoints",
+                            progress=progress)
+    params = result.params
+
+    # ---- freeze and evaluate
+    k_kind = enc["kind"]
+    k0_train, k0_test = kernel_pair(config, blueprint, params0, X_train, X_test)
+    k_train, k_test = kernel_pair(config, blueprint, params, X_train, X_test)
+    model, C, tuned = _fit_svm(config, k_train, y_train, seed)
+    model0, _, _ = _fit_svm(config, k0_train, y_train, seed)
+    train_acc, test_acc = _accuracy(model, k_train, y_train), _accuracy(model, k_test, y_test)
+    untrained_acc = _accuracy(model0, k0_test, y_test)
+
+    # ---- classical baselines on the identical split
+    rbf = diagnostics.tuned_rbf_svm(X_train, y_train, X_test, y_test, seed=seed,
+                                    cv=config["svm"]["cv_folds"])
+    linear = diagnostics.linear_svm(X_train, y_train, X_test, y_test, seed=seed,
+                                    cv=config["svm"]["cv_folds"])
+
+    # ---- paired significance over repeated splits (frozen learned parameters)
+    def quantum_kernels(Xa, ya, Xb):
+        return kernel_pair(config, blueprint, params, Xa, Xb)
+
+    repeats = diagnostics.repeated_split_scores(
+        quantum_kernels, dataset.X, y_all, n_repeats=config["evaluation"]["repeats"],
+        test_fraction=config["data"]["test_fraction"], seed=seed, n_components=n_features,
+        reduce=config["data"]["reduce"], cv=config["svm"]["cv_folds"],
+        C=config["svm"]["C"] or None)
+    n_test = len(y_test)
+    significance = diagnostics.compare_accuracies(
+        repeats["quantum"], repeats["rbf_svm"], n_train=len(y_train), n_test=n_test,
+        alpha=config["evaluation"]["alpha"])
+
+    # ---- diagnostics
+    conc = diagnostics.concentration(k_train, blueprint.n_qubits,
+                                     shots=config["evaluation"]["shots"])
+    geo = diagnostics.geometric_difference(k_train, rbf["train_gram"])
+    spectra = {"initial": diagnostics.spectrum(k0_train), "final": diagnostics.spectrum(k_train),
+               "rbf": diagnostics.spectrum(rbf["train_gram"])}
+    align0 = diagnostics.alignment_of(k0_train, y_train)
+    align1 = diagnostics.alignment_of(k_train, y_train)
+
+    # ---- hardware estimate
+    resources = resource_counts(blueprint)
+    hardware = None
+    if config["hardware"]["enabled"]:
+        hardware = hardware_estimate(config, blueprint, k_train, k_test, y_train, y_test, C,
+                                     resources)
+
+    # ---- artifacts
+    from hilbertune.qasm import encoding_to_qasm3
+
+    try:
+        qasm_text = encoding_to_qasm3(blueprint, params)
+    except InvalidInputError as exc:
+        qasm_text = f"// not exported: {exc}\n"
+    classes = np.unique(y_all)
+    bandwidth0 = float(math.exp(float(params0["log_bandwidth"])))
+    bandwidth1 = float(math.exp(float(params["log_bandwidth"])))
+    cautions = [SIMULATION_CAUTION, diagnostics.SIMULATION_NOTE if hasattr(
+        diagnostics, "SIMULATION_NOTE") else ""]
+    cautions = [c for c in dict.fromkeys(cautions) if c]
+    if conc.get("warning"):
+        cautions.append(conc["warning"])
+    if dataset.invented:
+        cautions.append("The dataset is invented by hilbertune's demo generator; results say "
+                        "nothing about any real system.")
+    if result.stop_reason and "non-finite" in result.stop_reason.lower():
+        cautions.append(f"Training stopped early: {result.stop_reason}")
+    cautions.append(f"Accuracies come from one split of {len(y_train)} training and {n_test} "
+                    "test rows; the significance test uses "
+                    f"{config['evaluation']['repeats']} repeated splits.")
+
+    summary = {
+        "format_version": artifacts.FORMAT_VERSION,
+        "n_qubits": blueprint.n_qubits,
+        "seed": seed,
+        "objective": config["training"]["objective"],
+        "train_accuracy": train_acc,
+        "test_accuracy": test_acc,
+        "untrained_test_accuracy": untrained_acc,
+        "alignment": {"initial": align0["alignment"], "final": align1["alignment"],
+                      "centered_initial": align0["centered_alignment"],
+                      "centered_final": align1["centered_alignment"]},
+        "svm": {"C": C, "tuned_by_cv": tuned},
+        "baselines": {
+            "rbf_svm": {k: v for k, v in rbf.items() if k != "train_gram"},
+            "linear_svm": linear,
+            "untrained_quantum": {"test_accuracy": untrained_acc},
+        },
+        "significance": {**significance, "repeats": config["evaluation"]["repeats"],
+                         "per_repeat": {k: list(map(float, v)) for k, v in repeats.items()}},
+        "diagnostics": {
+            "concentration": conc,
+            "effective_dimension": {k: float(diagnostics.effective_dimension(v))
+                                    for k, v in (("initial", k0_train), ("final", k_train),
+                                                 ("rbf", rbf["train_gram"]))},
+            "geometric_difference": geo,
+        },
+        "dataset": {"source": dataset.source, "invented": bool(dataset.invented),
+                    "sha256": dataset.sha256, "n_samples": int(len(y_all)),
+                    "n_features_raw": int(dataset.X.shape[1]), "n_features": n_features,
+                    "feature_names": list(dataset.feature_names), "target": dataset.target_name,
+                    "classes": [str(c) for c in classes], "train_size": int(len(y_train)),
+                    "test_size": int(n_test), "test_fraction": config["data"]["test_fraction"]},
+        "encoding": {"family": blueprint.family, "kind": k_kind},
+        "circuit": resources,
+        "training": {"steps_run": len(result.history), "stop_reason": result.stop_reason,
+                     "best_step": result.best_step, "bandwidth_initial": bandwidth0,
+                     "bandwidth_final": bandwidth1},
+        "hardware": hardware,
+        "cautions": cautions,
+        "versions": artifacts.library_versions(),
+        "wall_time_s": time.perf_counter() - started,
+    }
+
+    param_arrays = {f"param_{k}": np.asarray(v) for k, v in params.items()}
+    param_arrays.update({f"initial_{k}": np.asarray(v) for k, v in params0.items()})
+    param_arrays.update({f"prep_{k}": v for k, v in split.preprocessing.to_arrays().items()})
+    param_arrays.update({"X_train": X_train, "y_train": np.asarray(y_train).astype(str),
+                         "classes": classes.astype(str), "svm_C": np.asarray(C)})
+    artifacts.write_npz(out_dir / "params.npz", param_arrays)
+    kernel_arrays = {"train_initial": k0_train, "train_final": k_train,
+                     "train_rbf": rbf["train_gram"], "y_train": _label_ids(y_train, classes),
+                     "y_test": _label_ids(y_test, classes),
+                     **{f"spectrum_{k}": v for k, v in spectra.items()}}
+    if n_features == 2 and blueprint.n_qubits <= 12:
+        xs, ys, grid = _boundary(config, blueprint, params, model, X_train, k_kind)
+        kernel_arrays.update({"boundary_x": xs, "boundary_y": ys, "boundary_grid": grid,
+                              "X_train": X_train, "X_test": X_test})
+    artifacts.write_npz(out_dir / "kernels.npz", kernel_arrays)
+    artifacts.write_csv_rows(out_dir / "history.csv", result.history, list(HISTORY_COLUMNS))
+    artifacts.write_text(out_dir / "circuit.qasm", qasm_text)
+    artifacts.write_json(out_dir / "summary.json", summary)
+    from hilbertune.report import build_report
+
+    build_report(out_dir)
+    artifacts.write_manifest(out_dir, seed=seed, data_sha256=dataset.sha256,
+                             artifacts=list(ARTIFACTS))
+    if (out_dir / "checkpoints").is_dir():
+        shutil.rmtree(out_dir / "checkpoints")  # the run is complete; params.npz holds it
+    return summary
+
+
+def _label_ids(y, classes):
+    lookup = {str(c): i for i, c in enumerate(classes)}
+    return np.array([lookup[str(v)] for v in y], dtype=np.int64)
+
+
+def hardware_estimate(config, blueprint, k_train, k_test, y_train, y_test, C, resources) -> dict:
+    """Shot budget and device-noise estimate for the learned kernel (JSON-able dict)."""
+    from hilbertune import hardware
+
+    hw = config["hardware"]
+    budget = hardware.shot_budget(k_train, k_test, y_train, y_test, C=C,
+                                  shots_grid=list(hw["shots_grid"]), seed=config["seed"],
+                                  tolerance=hw["tolerance"], estimator=hw["estimator"],
+                                  n_qubits=blueprint.n_qubits)
+    noise = hardware.device_noise_summary(k_train, k_test, y_train, y_test, C=C,
+                                          resources=resources,
+                                          one_qubit_error=hw["one_qubit_error"],
+                                          two_qubit_error=hw["two_qubit_error"],
+                                          n_qubits=blueprint.n_qubits)
+    return {"estimator": hw["estimator"], "shot_budget": budget, "device_noise": noise}
+
+
+def summary_lines(summary: dict) -> list:
+    """A few plain lines for the terminal."""
+    base = summary.get("baselines", {})
+    sig = summary.get("significance", {})
+    lines = [
+        f"dataset: {summary['dataset']['source']}"
+        + (" (INVENTED demo data)" if summary["dataset"].get("invented") else ""),
+        f"alignment: {summary['alignment']['initial']:.3f} -> {summary['alignment']['final']:.3f}",
+        f"test accuracy: learned quantum {summary['test_accuracy']:.3f} | untrained quantum "
+        f"{summary['untrained_test_accuracy']:.3f} | tuned RBF "
+        f"{base.get('rbf_svm', {}).get('test_accuracy', float('nan')):.3f} | linear "
+        f"{base.get('linear_svm', {}).get('test_accuracy', float('nan')):.3f}",
+        f"verdict: {sig.get('verdict', 'n/a')} (p = {sig.get('p_value', float('nan')):.3g})",
+        SIMULATION_CAUTION,
+    ]
+    return lines
+
+
+# --------------------------------------------------------------------------- reading runs
+
+def load_run(run_dir):
+    """Verified artifacts of a finished run: (config, params, arrays, summary)."""
+    from hilbertune import config as cfg
+
+    run_dir = Path(run_dir)
+    artifacts.verify_run(run_dir)
+    config = cfg.resolve_config(cfg.load_toml(run_dir / "config.toml"))
+    arrays = artifacts.read_npz(run_dir / "params.npz")
+    params = {k[len("param_"):]: arrays[k] for k in arrays if k.startswith("param_")}
+    if set(params) != {"weights", "biases", "log_bandwidth"}:
+        raise ArtifactError(f"params.npz in {str(run_dir)!r} has no learned parameters; rerun "
+                            "the fit")
+    summary = artifacts.read_json(run_dir / "summary.json")
+    return config, params, arrays, summary
+
+
+def predict_csv(run_dir, csv_path) -> list:
+    """Predicted labels for every row of a CSV with the run's feature columns."""
+    from hilbertune import data
+    from sklearn.svm import SVC
+
+    config, params, arrays, summary = load_run(run_dir)
+    names = summary["dataset"]["feature_names"]
+    X = data.load_features(csv_path, names)
+    prep = data.Preprocessing.from_arrays({k[len("prep_"):]: v for k, v in arrays.items()
+                                           if k.startswith("prep_")})
+    X = prep.transform(X)
+    X_train, y_train = arrays["X_train"], arrays["y_train"]
+    blueprint = build_blueprint(config, X_train.shape[1])
+    k_train, k_new = kernel_pair(config, blueprint, params, X_train, X)
+    model = SVC(kernel="precomputed", C=float(arrays["svm_C"])).fit(k_train, y_train)
+    return list(model.predict(k_new))
+
+
+def export_circuit(run_dir, *, kernel_circuit: bool = False):
+    """OpenQASM 3 text of a run's learned encoding (or its kernel-estimation circuit)."""
+    from hilbertune.circuits import resource_counts
+    from hilbertune.qasm import encoding_to_qasm3, kernel_circuit_to_qasm3
+
+    config, params, arrays, summary = load_run(run_dir)
+    blueprint = build_blueprint(config, arrays["X_train"].shape[1])
+    make = kernel_circuit_to_qasm3 if kernel_circuit else encoding_to_qasm3
+    return make(blueprint, params), resource_counts(blueprint)
+
+
+def reproduce_run(run_dir, *, keep=None, progress: bool = False):
+    """Rerun from the saved config and seed; compare parameters and metrics.
+
+    Returns:
+      (identical: bool, differences: list of readable strings).
+    """
+    config, params, arrays, summary = load_run(run_dir)
+    target = Path(keep) if keep else Path(tempfile.mkdtemp(prefix="hilbertune-reproduce-"))
+    try:
+        new_summary = execute_fit(config, target, overwrite=keep is not None, progress=progress)
+        new_arrays = artifacts.read_npz(target / "params.npz")
+        differences = []
+        for key in sorted(set(arrays) | set(new_arrays)):
+            a, b = arrays.get(key), new_arrays.get(key)
+            if a is None or b is None:
+                differences.append(f"{key}: present in only one run")
+            elif a.shape != b.shape or a.tobytes() != b.tobytes():
+                gap = (float(np.max(np.abs(a.astype(float) - b.astype(float))))
+                       if a.shape == b.shape and a.dtype.kind in "fiu" else "n/a")
+                differences.append(f"{key}: arrays differ (max abs difference {gap})")
+        for key in ("train_accuracy", "test_accuracy", "untrained_test_accuracy"):
+            if summary.get(key) != new_summary.get(key):
+                differences.append(f"{key}: {summary.get(key)} then {new_summary.get(key)}")
+        for key in ("initial", "final"):
+            if summary["alignment"][key] != new_summary["alignment"][key]:
+                differences.append(f"alignment.{key}: {summary['alignment'][key]} then "
+                                   f"{new_summary['alignment'][key]}")
+        return not differences, differences
+    finally:
+        if keep is None:
+            shutil.rmtree(target, ignore_errors=True)
