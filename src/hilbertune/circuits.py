@@ -375,7 +375,9 @@ def _apply_stage(blueprint, program, k, states, angles, inverse=False):
     perm = program.stage_data[k]
     if inverse:
         perm = np.argsort(perm)
-    return states[:, perm]
+    # int32 indices: an int64 numpy index fails in jax 0.10 once 64-bit mode is toggled
+    # in the same process (mixed int32/int64 in its bounds normalisation)
+    return states[:, perm.astype(np.int32)]
 
 
 def _product_prefix(blueprint, program, angles, dtype):
