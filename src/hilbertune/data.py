@@ -577,3 +577,45 @@ def split_and_scale(X, y, *, test_fraction: float = 0.25, seed: int = 0,
                  y_train=y[train_idx], y_test=y[test_idx], preprocessing=prep,
                  train_indices=np.asarray(train_idx, np.int64),
                  test_indices=np.asarray(test_idx, np.int64))
+
+
+def load_features(path, feature_names) -> np.ndarray:
+    """Feature columns ``feature_names`` (in that order) of a CSV, for prediction.
+
+    Other columns (a label column, identifiers) are ignored; every named column must be
+    present and numeric, without missing values.
+
+    Returns:
+      float64 array of shape [N, len(feature_names)].
+    """
+    _, text = _read_text(path)
+    name = os.fspath(path)
+    first = next(line for line in text.splitlines() if line.strip())
+    rows = [r for r in csv.reader(io.StringIO(text), delimiter=_pick_delimiter(first))
+            if r and any(c.strip() for c in r)]
+    header = [c.strip() for c in rows[0]]
+    missing = [f for f in feature_names if f not in header]
+    if missing:
+        raise InvalidInputError(f"{name}: missing feature column(s) {missing}; the file needs "
+                                f"the run's columns: {', '.join(feature_names)}")
+    if len(rows) < 2:
+        raise InvalidInputError(f"{name}: no data rows after the header; add rows to predict")
+    columns = [header.index(f) for f in feature_names]
+    X = np.empty((len(rows) - 1, len(columns)))
+    for i, cells in enumerate(rows[1:]):
+        if len(cells) != len(header):
+            raise InvalidInputError(f"{name}: data row {i + 1} has {len(cells)} cells but the "
+                                    f"header has {len(header)}; fix that row")
+        for k, j in enumerate(columns):
+            try:
+                value = _parse_number(cells[j])
+            except ValueError:
+                raise InvalidInputError(f"{name}: column {header[j]!r} is not numeric (data row "
+                                        f"{i + 1} has {cells[j].strip()!r}); fix that value"
+                                        ) from None
+            if value is None or not math.isfinite(value):
+                raise InvalidInputError(f"{name}: missing or infinite value in column "
+                                        f"{header[j]!r}, data row {i + 1}; fill it in or drop "
+                                        "the row")
+            X[i, k] = value
+    return X
