@@ -184,9 +184,19 @@ def _hardware_section(summary: dict) -> str:
         curve = budget["curve"]
         shots = [row["shots"] for row in curve]
         fig, ax = plt.subplots(figsize=(6, 3.4))
-        ax.semilogx(shots, [row["test_accuracy"] for row in curve], "o-", label="finite shots")
-        if budget.get("exact_test_accuracy") is not None:
-            ax.axhline(budget["exact_test_accuracy"], color="k", ls="--", label="exact kernel")
+        ax.errorbar(shots, [row["test_accuracy_mean"] for row in curve],
+                    yerr=[row["test_accuracy_std"] for row in curve], fmt="o-",
+                    label="finite shots")
+        noisy = hw.get("device_noise", {}).get("curve")
+        if noisy:
+            ax.errorbar([row["shots"] for row in noisy],
+                        [row["test_accuracy_mean"] for row in noisy],
+                        yerr=[row["test_accuracy_std"] for row in noisy], fmt="s--",
+                        label="finite shots + gate noise")
+        exact = budget.get("exact", {}).get("test_accuracy")
+        if exact is not None:
+            ax.axhline(exact, color="k", ls=":", label="exact kernel")
+        ax.set_xscale("log")
         ax.set_xlabel("shots per kernel entry")
         ax.set_ylabel("test accuracy")
         ax.legend()
@@ -194,6 +204,10 @@ def _hardware_section(summary: dict) -> str:
     rows = [(k, v) for k, v in hw.items() if not isinstance(v, (dict, list))]
     rows += [(f"shot budget: {k}", v) for k, v in budget.items()
              if not isinstance(v, (dict, list))]
+    rows += [(f"circuit executions ({k} shot count)", v)
+             for k, v in budget.get("total_executions", {}).items()]
+    rows += [(f"kernel entries to estimate ({k})", v)
+             for k, v in budget.get("entries", {}).items()]
     noise = hw.get("device_noise", {})
     rows += [(f"device noise: {k}", v) for k, v in noise.items()
              if not isinstance(v, (dict, list))]
@@ -249,6 +263,8 @@ def render(summary: dict, history: dict, kernels: dict) -> str:
              summary.get("test_accuracy"))]
     rows.append(("untrained quantum kernel", None, summary.get("untrained_test_accuracy")))
     for name, values in base.items():
+        if name == "untrained_quantum":
+            continue
         rows.append((name.replace("_", " "), values.get("train_accuracy"),
                      values.get("test_accuracy")))
     sig = summary.get("significance", {})

@@ -278,8 +278,8 @@ def execute_fit(config: dict, out_dir, *, overwrite: bool = False, progress: boo
     resources = resource_counts(blueprint)
     hardware = None
     if config["hardware"]["enabled"]:
-        hardware = hardware_estimate(config, blueprint, k_train, k_test, y_train, y_test, C,
-                                     resources)
+        hardware = hardware_estimate(config, blueprint, params, X_train, X_test, k_train,
+                                     k_test, y_train, y_test, C)
 
     # ---- artifacts
     from hilbertune.qasm import encoding_to_qasm3
@@ -380,21 +380,39 @@ def _label_ids(y, classes):
     return np.array([lookup[str(v)] for v in y], dtype=np.int64)
 
 
-def hardware_estimate(config, blueprint, k_train, k_test, y_train, y_test, C, resources) -> dict:
-    """Shot budget and device-noise estimate for the learned kernel (JSON-able dict)."""
+def hardware_estimate(config, blueprint, params, X_train, X_test, k_train, k_test, y_train,
+                      y_test, C) -> dict:
+    """Shot budget (noiseless and under gate noise) for the learned kernel (JSON-able dict)."""
     from hilbertune import hardware
 
     hw = config["hardware"]
-    budget = hardware.shot_budget(k_train, k_test, y_train, y_test, C=C,
-                                  shots_grid=list(hw["shots_grid"]), seed=config["seed"],
-                                  tolerance=hw["tolerance"], estimator=hw["estimator"],
-                                  n_qubits=blueprint.n_qubits)
-    noise = hardware.device_noise_summary(k_train, k_test, y_train, y_test, C=C,
-                                          resources=resources,
-                                          one_qubit_error=hw["one_qubit_error"],
-                                          two_qubit_error=hw["two_qubit_error"],
-                                          n_qubits=blueprint.n_qubits)
-    return {"estimator": hw["estimator"], "shot_budget": budget, "device_noise": noise}
+    estimator = hw["estimator"]
+    overlaps = {}
+    if estimator == "hadamard_test":  # estimates Re and Im of the overlap, needs the phase
+        overlaps = {"overlaps_train": hardware.state_overlaps(blueprint, params, X_train),
+                    "overlaps_test": hardware.state_overlaps(blueprint, params, X_test,
+                                                             X_train)}
+    common = dict(seed=config["seed"], shots_grid=sorted(hw["shots_grid"]), C=C,
+                  tolerance=hw["tolerance"], estimator=estimator, n_qubits=blueprint.n_qubits,
+                  **overlaps)
+    budget = hardware.shot_budget(k_train, k_test, y_train, y_test, **common)
+    out = {"estimator": estimator, "shot_budget": budget}
+    if blueprint.state_kind == "gates":
+        p = hardware.compute_uncompute_depolarizing(
+            blueprint, one_qubit_error=hw["one_qubit_error"],
+            two_qubit_error=hw["two_qubit_error"])
+        noisy = hardware.shot_budget(k_train, k_test, y_train, y_test, depolarizing=p, **common)
+        out["device_noise"] = {
+            "model": "global depolarizing per kernel entry, k -> (1-p) k + p/2^n "
+                     "(Hubregtsen et al. 2022)",
+            "one_qubit_error": hw["one_qubit_error"], "two_qubit_error": hw["two_qubit_error"],
+            "depolarizing_probability": p,
+            "test_accuracy_at_most_shots": noisy["curve"][-1]["test_accuracy_mean"]
+            if noisy.get("curve") else None,
+            "empirical_shots_with_noise": noisy.get("empirical_shots"),
+            "curve": noisy.get("curve"),
+        }
+    return out
 
 
 def summary_lines(summary: dict) -> list:
