@@ -391,37 +391,66 @@ def _one_qubit_matrix(step, angles) -> np.ndarray:
     return np.broadcast_to(np.asarray(fixed, dtype=complex), (batch, 2, 2))
 
 
-_CNOT = np.array([[1, 0, 0, 0], [0, 1, 0, 0], [0, 0, 0, 1], [0, 0, 1, 0]], dtype=complex)
-_CZ = np.diag([1.0, 1.0, 1.0, -1.0]).astype(complex)
+def _apply_one_qubit(rho, matrix, q, n):
+    """``rho -> M rho M^dagger`` with M on qubit q; rho: complex [B, 2^n, 2^n], M: [B, 2, 2].
+
+    Rows get M and columns conj(M), since ``(M rho M^dagger)_ij = sum M_ia rho_ab conj(M_jb)``;
+    both are plain reshapes (qubit 0 is the most significant bit, as in ``gates``).
+    """
+    batch, dim = rho.shape[0], 2**n
+    left, right = 2**q, 2 ** (n - q - 1)
+    rows = _combine_halves(matrix, rho.reshape(batch, left, 2, right * dim))
+    cols = _combine_halves(np.conj(matrix), rows.reshape(batch, dim * left, 2, right))
+    return cols.reshape(batch, dim, dim)
 
 
-def _step_unitary(step, angles) -> np.ndarray:
-    """Batched matrix of a step on its own qubits: [B, 2^k, 2^k], first qubit most
-    significant."""
+def _combine_halves(matrix, view):
+    """``out[:, :, a] = sum_c M[:, a, c] view[:, :, c]`` for view [B, L, 2, R], M [B, 2, 2].
+
+    Written elementwise: batched matmuls of 2x2 blocks are far slower in numpy.
+    """
+    m = np.asarray(matrix)[:, :, :, None, None]  # [B, 2, 2, 1, 1]
+    out = np.empty_like(view)
+    out[:, :, 0] = m[:, 0, 0] * view[:, :, 0] + m[:, 0, 1] * view[:, :, 1]
+    out[:, :, 1] = m[:, 1, 0] * view[:, :, 0] + m[:, 1, 1] * view[:, :, 1]
+    return out
+
+
+def _apply_two_qubit(rho, step, angles, n):
+    """CNOT as an index permutation, CZ and ZZ as diagonal phases (as in ``circuits``)."""
+    a, b = step.qubits
+    if step.gate == "cnot":
+        perm = gates.cnot_permutation(n, a, b)
+        return rho[:, perm][:, :, perm]
+    if step.gate == "cz":
+        diagonal = np.broadcast_to(gates.cz_signs(n, [(a, b)]).astype(complex),
+                                   (rho.shape[0], 2**n))
+    else:  # zz: exp(-i t/2 Z_a Z_b) is diagonal with the parity signs of (a, b)
+        signs = gates.parity_signs(n, [(a, b)])[0]
+        diagonal = np.exp(-0.5j * angles[:, None] * signs[None, :])
+    return rho * diagonal[:, :, None] * np.conj(diagonal)[:, None, :]
+
+
+def _apply_step(rho, step, angles, n, inverse=False):
+    """One blueprint step on a batch of density matrices (``inverse``: its adjoint)."""
     if len(step.qubits) == 1:
-        return _one_qubit_matrix(step, angles)
-    batch = angles.shape[0]
-    if step.gate == "zz":
-        # exp(-i t Z(x)Z / 2) is diagonal with exp(-+ i t / 2) on even / odd parity
-        parity = np.array([1.0, -1.0, -1.0, 1.0])
-        phases = np.exp(-0.5j * angles[:, None] * parity[None, :])
-        return phases[:, :, None] * np.eye(4)[None]
-    fixed = _CNOT if step.gate == "cnot" else _CZ
-    return np.broadcast_to(fixed, (batch, 4, 4))
+        matrix = _one_qubit_matrix(step, angles)
+        if inverse:
+            matrix = np.conj(np.swapaxes(matrix, -1, -2))
+        return _apply_one_qubit(rho, matrix, step.qubits[0], n)
+    # CNOT and CZ are self-inverse; the adjoint of ZZ(t) is ZZ(-t)
+    return _apply_two_qubit(rho, step, -angles if inverse else angles, n)
 
 
-def _apply_unitary(rho, matrix, qubits, n):
-    """``rho -> M rho M^dagger`` on ``qubits``; rho as a tensor [B] + [2]*n + [2]*n."""
-    k = len(qubits)
-    m = matrix.reshape((matrix.shape[0],) + (2,) * (2 * k))
-    labels = list(range(2 * n + 1))
-    fresh = list(range(2 * n + 1, 2 * n + 1 + k))
-    for offset, op in ((1, m), (1 + n, np.conj(m))):
-        axes = [offset + q for q in qubits]
-        out = [fresh[axes.index(a)] if a in axes else a for a in labels]
-        # the new indices take the old ones' positions, so the layout is unchanged
-        rho = np.einsum(op, [0] + fresh + axes, rho, labels, out)
-    return rho
+def _fully_mix(rho, q, n):
+    """``Tr_q(rho) (x) I / 2`` on qubit q (the 1-qubit completely depolarizing channel)."""
+    batch, left, right = rho.shape[0], 2**q, 2 ** (n - q - 1)
+    view = rho.reshape(batch, left, 2, right, left, 2, right)
+    half_trace = 0.5 * (view[:, :, 0, :, :, 0, :] + view[:, :, 1, :, :, 1, :])
+    mixed = np.zeros_like(view)
+    mixed[:, :, 0, :, :, 0, :] = half_trace
+    mixed[:, :, 1, :, :, 1, :] = half_trace
+    return mixed.reshape(rho.shape)
 
 
 def _depolarize(rho, qubits, error, n):
@@ -434,13 +463,9 @@ def _depolarize(rho, qubits, error, n):
     """
     if error == 0.0:
         return rho
-    labels = list(range(2 * n + 1))
     mixed = rho
     for q in qubits:
-        row, col = 1 + q, 1 + n + q
-        traced = np.trace(mixed, axis1=row, axis2=col)
-        kept = [a for a in labels if a not in (row, col)]
-        mixed = np.einsum(traced, kept, np.eye(2) / 2.0, [row, col], labels)
+        mixed = _fully_mix(mixed, q, n)
     return (1.0 - error) * rho + error * mixed
 
 
@@ -501,11 +526,10 @@ def density_matrix_kernel(blueprint: Blueprint, params: dict, X_a, X_b=None, *,
         return _depolarize(rho, everything if channel == "global" else step.qubits, error, n)
 
     # first half U(x_a) once per row sample
-    rho_a = np.zeros((X_a.shape[0],) + (2,) * (2 * n), dtype=np.complex128)
-    rho_a[(slice(None),) + (0,) * (2 * n)] = 1.0
+    rho_a = np.zeros((X_a.shape[0], 2**n, 2**n), dtype=np.complex128)
+    rho_a[:, 0, 0] = 1.0
     for k, step in enumerate(blueprint.steps):
-        rho_a = noise(_apply_unitary(rho_a, _step_unitary(step, angles_a[:, k]),
-                                     step.qubits, n), step)
+        rho_a = noise(_apply_step(rho_a, step, angles_a[:, k], n), step)
 
     if symmetric:
         rows, cols = np.triu_indices(X_a.shape[0])
@@ -518,11 +542,10 @@ def density_matrix_kernel(blueprint: Blueprint, params: dict, X_a, X_b=None, *,
         rho = rho_a[r]
         for k in reversed(range(len(blueprint.steps))):
             step = blueprint.steps[k]
-            inverse = np.conj(np.swapaxes(_step_unitary(step, angles_b[c, k]), -1, -2))
-            rho = noise(_apply_unitary(rho, inverse, step.qubits, n), step)
+            rho = noise(_apply_step(rho, step, angles_b[c, k], n, inverse=True), step)
         if final > 0:
             rho = _depolarize(rho, everything, final, n)
-        values[start:start + r.shape[0]] = rho[(slice(None),) + (0,) * (2 * n)].real
+        values[start:start + r.shape[0]] = rho[:, 0, 0].real
     out = np.empty((X_a.shape[0], X_b.shape[0]))
     out[rows, cols] = values
     if symmetric:
