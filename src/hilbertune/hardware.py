@@ -32,6 +32,8 @@ import math
 from typing import NamedTuple
 
 import numpy as np
+import jax
+import jax.numpy as jnp
 
 from hilbertune import gates
 from hilbertune.circuits import (Blueprint, compile_blueprint, encode_states, resource_counts,
@@ -90,13 +92,19 @@ def _check_count(value, name: str) -> int:
 
 
 def _generator(seed) -> np.random.Generator:
+    """A numpy Generator from an int, a Generator, or a JAX PRNG key (its key data seeds it)."""
     if isinstance(seed, np.random.Generator):
         return seed
     if isinstance(seed, (int, np.integer)) and not isinstance(seed, bool) and seed >= 0:
         return np.random.default_rng(int(seed))
-    raise InvalidInputError(f"seed must be a non-negative integer or a numpy Generator, got "
-                            f"{seed!r}; pass seed=0 (or any fixed integer) for reproducible "
-                            "sampling")
+    if isinstance(seed, jax.Array):
+        if jax.dtypes.issubdtype(seed.dtype, jax.dtypes.prng_key) and seed.ndim == 0:
+            return np.random.default_rng(np.asarray(jax.random.key_data(seed)).ravel().tolist())
+        if seed.dtype == jnp.uint32 and seed.shape == (2,):  # raw uint32 key
+            return np.random.default_rng(np.asarray(seed).tolist())
+    raise InvalidInputError(f"seed must be a non-negative integer, a numpy Generator or a "
+                            f"single JAX PRNG key, got {seed!r}; pass seed=0 (or any fixed "
+                            "integer) for reproducible sampling")
 
 
 def _as_matrix(K, name: str) -> np.ndarray:
