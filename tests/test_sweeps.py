@@ -295,3 +295,28 @@ def test_dask_local_cluster_on_loopback_runs_the_sweep(tmp_path):
     assert all(r["pid"] != os.getpid() for r in ok)
     assert math.isclose(ok[1]["test_accuracy"], 0.72)
     assert read_results(out) == rows
+
+
+@pytest.mark.slow
+def test_sweep_with_the_real_run_function_on_tiny_data(tmp_path):
+    # trial_fn=None: each trial is a full runs.execute_fit run directory
+    tiny = {"data": {"source": "moons", "samples": 40}, "encoding": {"qubits": 2},
+            "training": {"steps": 3}, "evaluation": {"repeats": 2},
+            "hardware": {"enabled": False}, "svm": {"cv_folds": 2, "C": 1.0}}
+    out = tmp_path / "sweep"
+    rows = run_sweep({"base": tiny, "grid": {"training.steps": [2, 3]}}, out)
+    assert [r["status"] for r in rows] == ["ok", "ok"], [r["error"] for r in rows]
+    import json
+    for row in rows:
+        trial_dir = out / "trials" / row["trial_id"]
+        summary = json.loads((trial_dir / "summary.json").read_text())
+        assert row["test_accuracy"] == summary["test_accuracy"]
+        assert 0.0 <= row["test_accuracy"] <= 1.0
+        assert row["alignment.final"] == summary["alignment"]["final"]
+        assert row["baselines.rbf_svm.test_accuracy"] == \
+            summary["baselines"]["rbf_svm"]["test_accuracy"]
+        assert (trial_dir / "report.html").is_file()  # the sweep report links to it
+        assert cfg.load_toml(trial_dir / "config.toml")["training"]["steps"] == \
+            row["training.steps"]
+    report = (out / "sweep_report.html").read_text()
+    assert "tuned RBF SVM" in report and f"trials/{rows[0]['trial_id']}/report.html" in report
