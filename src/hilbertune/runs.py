@@ -403,8 +403,15 @@ def hardware_estimate(config, blueprint, params, X_train, X_test, k_train, k_tes
             two_qubit_error=hw["two_qubit_error"])
         noisy = hardware.shot_budget(k_train, k_test, y_train, y_test, depolarizing=p, **common)
         out["device_noise"] = {
-            "model": "global depolarizing per kernel entry, k -> (1-p) k + p/2^n "
-                     "(Hubregtsen et al. 2022)",
+            "model": {"compute_uncompute": "global depolarizing per kernel entry, k -> "
+                                           "(1-p) k + p/2^n (Hubregtsen et al. 2022)",
+                      "swap_test": "global depolarizing shrinks the measured value: k -> "
+                                   "(1-p) k",
+                      "hadamard_test": "global depolarizing shrinks the measured overlap by "
+                                       "(1-p)"}[estimator],
+            "p_from": "gate counts of the compute-uncompute circuit (encoding and its "
+                      "inverse); for the ancilla estimators an approximation, since their "
+                      "controlled circuits have more gates",
             "one_qubit_error": hw["one_qubit_error"], "two_qubit_error": hw["two_qubit_error"],
             "depolarizing_probability": p,
             "test_accuracy_at_most_shots": noisy["curve"][-1]["test_accuracy_mean"]
