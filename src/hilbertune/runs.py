@@ -17,7 +17,7 @@ from pathlib import Path
 import numpy as np
 
 from hilbertune import artifacts
-from hilbertune.errors import ArtifactError, InvalidInputError
+from hilbertune.errors import ArtifactError, HilbertuneError, InvalidInputError
 
 ARTIFACTS = ("config.toml", "params.npz", "kernels.npz", "history.csv", "summary.json",
              "report.html", "circuit.qasm")
@@ -126,16 +126,37 @@ def _accuracy(model, gram, y) -> float:
     return float(np.mean(model.predict(gram) == y))
 
 
-def _prepare_out_dir(out_dir: Path, overwrite: bool) -> None:
+def _prepare_out_dir(out_dir: Path, overwrite: bool, config_text: str) -> None:
     if out_dir.exists() and not out_dir.is_dir():
         raise InvalidInputError(f"--out {str(out_dir)!r} is a file; choose a directory path")
     if out_dir.is_dir() and any(out_dir.iterdir()):
-        resumable = (out_dir / "checkpoints").is_dir() and not (out_dir / "manifest.json").exists()
-        if not overwrite and not resumable:
+        finished = (out_dir / artifacts.MANIFEST).exists()
+        saved = out_dir / "config.toml"
+        # an interrupted run of ours: checkpoints, or killed before the first checkpoint
+        # (then only its config.toml, identical to this one, is there)
+        interrupted = not finished and ((out_dir / "checkpoints").is_dir() or (
+            saved.is_file() and saved.read_bytes() == config_text.encode("utf-8")))
+        if not overwrite and not interrupted:
             raise InvalidInputError(f"output directory {str(out_dir)!r} already exists and is not "
                                     "empty; choose another --out or pass --overwrite (your other "
                                     "files there are kept)")
+        if finished:
+            # unmark the old run first: a crash while overwriting then leaves an interrupted
+            # run (resumable), not a manifest that disagrees with half-replaced artifacts
+            (out_dir / artifacts.MANIFEST).unlink()
+        _remove_stale_temporaries(out_dir)
     out_dir.mkdir(parents=True, exist_ok=True)
+
+
+def _remove_stale_temporaries(out_dir: Path) -> None:
+    """Delete temporary files that a killed process left (atomic writes never finished)."""
+    names = ARTIFACTS + (artifacts.MANIFEST,)
+    for path in out_dir.glob(".*.tmp"):  # artifacts.write_bytes: .<name>.<random>.tmp
+        if any(path.name.startswith(f".{name}.") for name in names) and path.is_file():
+            path.unlink()
+    for path in (out_dir / "checkpoints").glob(".tmp-*"):  # training's checkpoint writes
+        if path.name.endswith(("checkpoint.npz", "checkpoint.json")) and path.is_file():
+            path.unlink()
 
 
 def _check_resume_config(out_dir: Path, config_text: str, overwrite: bool) -> None:
@@ -170,6 +191,34 @@ def _boundary(config, blueprint, params, model, X_train, k_kind):
 
 # --------------------------------------------------------------------------- the whole job
 
+def check_inputs(config: dict):
+    """Load the data and build the encoding; every input error surfaces here, before any
+    file is written (also used to check every trial of a sweep up front).
+
+    Returns:
+      (dataset, n_features, blueprint, split).
+
+    Raises:
+      InvalidInputError for bad data or settings; ResourceLimitError (with the estimate)
+      when the statevectors of all samples would not fit in ``compute.memory_budget``.
+    """
+    from hilbertune import data
+    from hilbertune.circuits import is_product, require_state_memory
+    from hilbertune.kernels import resolve_memory_budget
+
+    dataset = load_dataset(config)
+    n_features = feature_count(config, dataset.X.shape[1])
+    blueprint = build_blueprint(config, n_features)
+    split = data.split_and_scale(dataset.X, np.asarray(dataset.y),
+                                 test_fraction=config["data"]["test_fraction"],
+                                 seed=config["seed"], n_components=n_features,
+                                 reduce=config["data"]["reduce"])
+    if not is_product(blueprint):  # product encodings never form statevectors
+        require_state_memory(len(split.X_train) + len(split.X_test), blueprint,
+                             resolve_memory_budget(config["compute"]["memory_budget"]))
+    return dataset, n_features, blueprint, split
+
+
 def execute_fit(config: dict, out_dir, *, overwrite: bool = False, progress: bool = False) -> dict:
     """Run the whole job for a resolved config and write a run directory.
 
@@ -182,10 +231,23 @@ def execute_fit(config: dict, out_dir, *, overwrite: bool = False, progress: boo
     Returns:
       the summary dict (also written to ``summary.json``).
     """
+    out_dir = Path(out_dir)
+    fresh = not out_dir.exists()
+    try:
+        return _execute_fit(config, out_dir, overwrite=overwrite, progress=progress)
+    except HilbertuneError:
+        # a failed fit leaves nothing partial behind in a directory it created itself (an
+        # interrupted one, Ctrl-C or a kill, keeps its checkpoints to resume from)
+        if fresh and out_dir.is_dir():
+            shutil.rmtree(out_dir, ignore_errors=True)
+        raise
+
+
+def _execute_fit(config: dict, out_dir: Path, *, overwrite: bool, progress: bool) -> dict:
     import jax
 
     from hilbertune import config as cfg
-    from hilbertune import data, diagnostics
+    from hilbertune import diagnostics
     from hilbertune.circuits import resource_counts
     from hilbertune.training import train_encoding
 
@@ -195,23 +257,12 @@ def execute_fit(config: dict, out_dir, *, overwrite: bool = False, progress: boo
     out_dir = Path(out_dir)
     seed = config["seed"]
 
-    dataset = load_dataset(config)  # input errors surface before anything is written
+    dataset, n_features, blueprint, split = check_inputs(config)
     y_all = np.asarray(dataset.y)
-    n_features = feature_count(config, dataset.X.shape[1])
-    blueprint = build_blueprint(config, n_features)
-    split = data.split_and_scale(dataset.X, y_all, test_fraction=config["data"]["test_fraction"],
-                                 seed=seed, n_components=n_features,
-                                 reduce=config["data"]["reduce"])
     X_train, X_test = split.X_train, split.X_test
     y_train, y_test = split.y_train, split.y_test
-    from hilbertune.circuits import require_state_memory
-    from hilbertune.kernels import resolve_memory_budget
 
-    if config["encoding"]["kind"] == "fidelity":
-        require_state_memory(len(X_train) + len(X_test), blueprint,
-                             resolve_memory_budget(config["compute"]["memory_budget"]))
-
-    _prepare_out_dir(out_dir, overwrite)
+    _prepare_out_dir(out_dir, overwrite, config_text)
     _check_resume_config(out_dir, config_text, overwrite)
     artifacts.write_text(out_dir / "config.toml", config_text)
 
