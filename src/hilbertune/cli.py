@@ -7,6 +7,7 @@ no traceback). ``--json`` prints one machine-readable JSON object on stdout.
 from __future__ import annotations
 
 import argparse
+import difflib
 import json
 import os
 import sys
@@ -16,6 +17,10 @@ from pathlib import Path
 from hilbertune.errors import HilbertuneError, InvalidInputError
 
 EXIT_OK, EXIT_FAILURE, EXIT_USAGE = 0, 1, 2
+# bundled dataset names (kept in step with hilbertune.data.BUNDLED_NAMES, which a test checks;
+# not imported here so that `--help` and usage errors stay fast)
+BUNDLED_NAMES = ("iris", "wine", "breast_cancer", "digits", "moons", "circles")
+DATA_SUFFIXES = (".csv", ".tsv", ".txt", ".dat")
 
 
 class _Parser(argparse.ArgumentParser):
@@ -120,13 +125,23 @@ class _Console:
 def _fit_config(args):
     from hilbertune import config as cfg
 
+    if args.config and args.config.suffix.lower() in DATA_SUFFIXES:
+        raise InvalidInputError(f"{str(args.config)!r} looks like a data file, but the first "
+                                "argument of `fit` is a TOML config; pass the data with "
+                                f"--data {args.config} --target COLUMN")
     user = cfg.load_toml(args.config) if args.config else {}
     overrides = []
     if args.data:
-        known = ("demo", "iris", "wine", "breast_cancer", "digits", "moons", "circles")
+        known = ("demo",) + BUNDLED_NAMES
         if args.data in known:
             overrides.append(("data.source", args.data))
         else:
+            if not Path(args.data).exists():
+                close = difflib.get_close_matches(args.data, known, n=1)
+                hint = f"did you mean {close[0]!r}? " if close else ""
+                raise InvalidInputError(f"data file {args.data!r} does not exist; {hint}pass an "
+                                        "existing CSV file or one of the dataset names "
+                                        f"{', '.join(known)}")
             overrides += [("data.source", "csv"), ("data.path", str(args.data))]
     if args.target:
         overrides.append(("data.target", args.target))
@@ -177,9 +192,16 @@ def _cmd_fit(args, console):
     return {"run_dir": str(out), "summary": summary}
 
 
+def _check_out_file(path) -> None:
+    if path is not None and Path(path).is_dir():
+        raise InvalidInputError(f"--out {str(path)!r} is a folder; pass a file name such as "
+                                f"{str(Path(path) / 'out.txt')!r}")
+
+
 def _cmd_predict(args, console):
     from hilbertune.runs import predict_csv
 
+    _check_out_file(args.out)
     rows = predict_csv(args.run_dir, args.csv)
     text = "row,prediction\n" + "".join(f"{i},{label}\n" for i, label in enumerate(rows))
     if args.out:
@@ -205,6 +227,7 @@ def _cmd_report(args, console):
 def _cmd_export(args, console):
     from hilbertune.runs import export_circuit
 
+    _check_out_file(args.out)
     text, resources = export_circuit(args.run_dir, kernel_circuit=args.kernel_circuit)
     if args.out:
         from hilbertune.artifacts import write_text
@@ -234,15 +257,42 @@ def _cmd_sweep(args, console):
     from hilbertune import config as cfg
     from hilbertune.sweeps import run_sweep
 
-    description = cfg.load_toml(args.description)
-    out = args.out or _default_out("sweep")
     if args.workers < 1:
         raise InvalidInputError(f"--workers must be at least 1, got {args.workers}")
+    description = cfg.load_toml(args.description)
+    _check_sweep_inputs(description)
+    out = args.out or _default_out("sweep")
     rows = run_sweep(description, out, workers=args.workers, scheduler=args.scheduler,
                      progress=not console.quiet)
     failed = sum(1 for r in rows if r.get("status") != "ok")
     console.say(f"{len(rows)} trials, {failed} failed; table: {Path(out) / 'results.csv'}")
-    return {"sweep_dir": str(out), "trials": len(rows), "failed": failed}
+    if failed:
+        print(f"hilbertune: failed: {failed} of {len(rows)} trials failed; see "
+              f"{Path(out) / 'errors'} and rerun the sweep to retry them", file=sys.stderr)
+    result = {"sweep_dir": str(out), "trials": len(rows), "failed": failed}
+    return result, (EXIT_FAILURE if failed else EXIT_OK)
+
+
+def _check_sweep_inputs(description) -> None:
+    """Load the data and build the encoding of every distinct trial before any trial runs,
+    so bad data or too many qubits stop the sweep up front (exit 2) instead of failing
+    every trial."""
+    from hilbertune.runs import check_inputs
+    from hilbertune.sweeps import plan_sweep
+
+    plan = plan_sweep(description)
+    seen = set()
+    for trial in plan.trials:
+        c = trial.config
+        key = json.dumps([c["seed"], c["data"], c["encoding"], c["compute"]], sort_keys=True)
+        if key in seen:
+            continue
+        seen.add(key)
+        try:
+            check_inputs(c)
+        except InvalidInputError as exc:
+            swept = ", ".join(f"{k}={v!r}" for k, v in trial.assignments)
+            raise type(exc)(f"sweep trial {trial.trial_id} ({swept}): {exc}") from None
 
 
 COMMANDS = {"demo": _cmd_demo, "fit": _cmd_fit, "predict": _cmd_predict,
