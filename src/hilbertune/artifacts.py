@@ -16,6 +16,7 @@ import os
 import platform
 import sys
 import tempfile
+import zipfile
 from importlib import metadata
 from pathlib import Path
 
@@ -77,9 +78,10 @@ def read_npz(path) -> dict:
     try:
         with np.load(path, allow_pickle=False) as data:
             return {k: data[k] for k in data.files}
-    except (OSError, ValueError) as exc:
+    except (OSError, ValueError, EOFError, zipfile.BadZipFile) as exc:
+        # ValueError includes "Object arrays cannot be loaded when allow_pickle=False"
         raise ArtifactError(f"{Path(path).name} could not be read ({exc}); the run directory "
-                            "is damaged: rerun with `hilbertune reproduce`") from None
+                            "is damaged: restore the file or rerun the fit") from None
 
 
 def read_json(path) -> dict:
@@ -147,6 +149,9 @@ def verify_run(run_dir) -> dict:
     Raises ArtifactError naming the first missing or modified file, or a newer format.
     """
     run_dir = Path(run_dir)
+    if run_dir.is_file():
+        raise ArtifactError(f"{str(run_dir)!r} is a file, not a run directory; pass the folder "
+                            "that `hilbertune fit --out` wrote")
     if not run_dir.is_dir():
         raise ArtifactError(f"run directory {str(run_dir)!r} not found; pass the folder that "
                             "`hilbertune fit --out` wrote")
@@ -156,12 +161,23 @@ def verify_run(run_dir) -> dict:
                             "directory (an interrupted run resumes with `hilbertune fit` and "
                             "the same --out)")
     manifest = read_json(path)
+    listed = manifest.get("artifacts") if isinstance(manifest, dict) else None
+    if not isinstance(listed, dict) or not all(
+            isinstance(name, str) and isinstance(digest, str) for name, digest in listed.items()):
+        raise ArtifactError(f"{MANIFEST} in {str(run_dir)!r} is not a hilbertune manifest (no "
+                            "table of artifact hashes); restore it or rerun the fit")
     version = manifest.get("format_version")
-    if not isinstance(version, int) or version > FORMAT_VERSION:
+    if isinstance(version, bool) or not isinstance(version, int) or version < 1:
+        raise ArtifactError(f"{MANIFEST} in {str(run_dir)!r} has no valid format_version "
+                            f"(got {version!r}); restore it or rerun the fit")
+    if version > FORMAT_VERSION:
         raise ArtifactError(f"{str(run_dir)!r} was written by a newer hilbertune (format "
                             f"{version!r}, this version reads {FORMAT_VERSION}); upgrade "
                             "hilbertune to read it")
-    for name, digest in manifest.get("artifacts", {}).items():
+    for name, digest in listed.items():
+        if Path(name).name != name or name in ("", ".", ".."):
+            raise ArtifactError(f"{MANIFEST} in {str(run_dir)!r} lists {name!r}, which is not "
+                                "a file of the run directory; restore the manifest or rerun")
         file = run_dir / name
         if not file.is_file():
             raise ArtifactError(f"{name} is missing from {str(run_dir)!r}; restore it or rerun "
