@@ -502,14 +502,27 @@ def load_run(run_dir):
     from hilbertune import config as cfg
 
     run_dir = Path(run_dir)
-    artifacts.verify_run(run_dir)
-    config = cfg.resolve_config(cfg.load_toml(run_dir / "config.toml"))
+    manifest = artifacts.verify_run(run_dir)
+    unlisted = [name for name in ("config.toml", "params.npz", "summary.json")
+                if name not in manifest["artifacts"]]
+    if unlisted:
+        raise ArtifactError(f"{artifacts.MANIFEST} in {str(run_dir)!r} does not cover "
+                            f"{', '.join(unlisted)}, so they cannot be trusted; rerun the fit")
+    try:
+        config = cfg.resolve_config(cfg.load_toml(run_dir / "config.toml"))
+    except InvalidInputError as exc:
+        raise ArtifactError(f"config.toml in {str(run_dir)!r} is not usable ({exc})") from None
     arrays = artifacts.read_npz(run_dir / "params.npz")
     params = {k[len("param_"):]: arrays[k] for k in arrays if k.startswith("param_")}
-    if set(params) != {"weights", "biases", "log_bandwidth"}:
-        raise ArtifactError(f"params.npz in {str(run_dir)!r} has no learned parameters; rerun "
-                            "the fit")
+    needed = ("X_train", "y_train", "svm_C")
+    if set(params) != {"weights", "biases", "log_bandwidth"} or any(k not in arrays
+                                                                      for k in needed):
+        raise ArtifactError(f"params.npz in {str(run_dir)!r} lacks the learned parameters or "
+                            "the training data of the SVM; rerun the fit")
     summary = artifacts.read_json(run_dir / "summary.json")
+    if not isinstance(summary, dict) or not isinstance(summary.get("dataset"), dict):
+        raise ArtifactError(f"summary.json in {str(run_dir)!r} has no dataset section; rerun "
+                            "the fit")
     return config, params, arrays, summary
 
 
