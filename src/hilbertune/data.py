@@ -594,6 +594,10 @@ def load_features(path, feature_names) -> np.ndarray:
     rows = [r for r in csv.reader(io.StringIO(text), delimiter=_pick_delimiter(first))
             if r and any(c.strip() for c in r)]
     header = [c.strip() for c in rows[0]]
+    doubled = sorted({f for f in feature_names if header.count(f) > 1})
+    if doubled:
+        raise InvalidInputError(f"{name}: duplicate column name(s) {doubled}; rename them so "
+                                "each column name is unique")
     missing = [f for f in feature_names if f not in header]
     if missing:
         raise InvalidInputError(f"{name}: missing feature column(s) {missing}; the file needs "
