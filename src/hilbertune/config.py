@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import copy
 import difflib
+import json
 import math
 import tomllib
 from pathlib import Path
@@ -129,7 +130,7 @@ def _unknown(key: str) -> InvalidInputError:
     if not close:  # a bare option name given without its section
         close = [k for k in all_keys() if k.split(".")[-1] == key.split(".")[-1]][:1]
     hint = f"; did you mean '{close[0]}'?" if close else "; see `hilbertune fit --help-config`"
-    return InvalidInputError(f"unknown config key '{key}'{hint}")
+    return InvalidInputError(f"unknown config key {key!r}{hint}")
 
 
 def _spec(dotted: str):
@@ -243,7 +244,9 @@ def dump_toml(config: dict) -> str:
         if isinstance(v, bool):
             return "true" if v else "false"
         if isinstance(v, str):
-            return '"' + v.replace("\\", "\\\\").replace('"', '\\"') + '"'
+            # a TOML basic string: JSON's escapes (\\ \" \n \uXXXX ...) are TOML's too; DEL
+            # must be escaped in TOML but not in JSON (TOML 1.0, "String")
+            return json.dumps(v, ensure_ascii=False).replace("\x7f", "\\u007f")
         if isinstance(v, float):
             return repr(v)
         if isinstance(v, list):
