@@ -295,6 +295,11 @@ def _check_sweep_inputs(description) -> None:
             raise type(exc)(f"sweep trial {trial.trial_id} ({swept}): {exc}") from None
 
 
+def _one_line(exc) -> str:
+    # messages may quote user text (a key, a cell, a path) that holds line breaks
+    return " ".join(str(exc).split())
+
+
 COMMANDS = {"demo": _cmd_demo, "fit": _cmd_fit, "predict": _cmd_predict,
             "report": _cmd_report, "export": _cmd_export, "reproduce": _cmd_reproduce,
             "sweep": _cmd_sweep}
@@ -316,10 +321,10 @@ def main(argv=None) -> int:
             print(json.dumps(result, default=str, sort_keys=True))
         return code
     except InvalidInputError as exc:
-        print(f"hilbertune: error: {exc}", file=sys.stderr)
+        print(f"hilbertune: error: {_one_line(exc)}", file=sys.stderr)
         return EXIT_USAGE
     except HilbertuneError as exc:
-        print(f"hilbertune: failed: {exc}", file=sys.stderr)
+        print(f"hilbertune: failed: {_one_line(exc)}", file=sys.stderr)
         return EXIT_FAILURE
     except KeyboardInterrupt:
         print("hilbertune: interrupted; finished artifacts and checkpoints are kept, rerun the "
