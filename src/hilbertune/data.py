@@ -591,8 +591,14 @@ def load_features(path, feature_names) -> np.ndarray:
     _, text = _read_text(path)
     name = os.fspath(path)
     first = next(line for line in text.splitlines() if line.strip())
-    rows = [r for r in csv.reader(io.StringIO(text), delimiter=_pick_delimiter(first))
-            if r and any(c.strip() for c in r)]
+    try:
+        rows = [r for r in csv.reader(io.StringIO(text), delimiter=_pick_delimiter(first))
+                if r and any(c.strip() for c in r)]
+    except csv.Error as error:
+        raise InvalidInputError(f"{name}: not valid CSV ({error}); fix the quoting") from None
+    if not rows:
+        raise InvalidInputError(f"{name}: no header row found (only empty cells); add a "
+                                f"header row with the run's columns: {', '.join(feature_names)}")
     header = [c.strip() for c in rows[0]]
     doubled = sorted({f for f in feature_names if header.count(f) > 1})
     if doubled:
