@@ -260,7 +260,7 @@ def _cmd_sweep(args, console):
     if args.workers < 1:
         raise InvalidInputError(f"--workers must be at least 1, got {args.workers}")
     description = cfg.load_toml(args.description)
-    _check_sweep_inputs(description)
+    _check_sweep_inputs(description, args.workers, args.scheduler)
     out = args.out or _default_out("sweep")
     rows = run_sweep(description, out, workers=args.workers, scheduler=args.scheduler,
                      progress=not console.quiet)
@@ -273,15 +273,17 @@ def _cmd_sweep(args, console):
     return result, (EXIT_FAILURE if failed else EXIT_OK)
 
 
-def _check_sweep_inputs(description) -> None:
+def _check_sweep_inputs(description, workers: int, scheduler) -> None:
     """Load the data and build the encoding of every distinct trial before any trial runs,
     so bad data or too many qubits stop the sweep up front (exit 2) instead of failing
-    every trial."""
+    every trial; parallel trials on this machine must fit in its memory together."""
+    from hilbertune.circuits import is_product, state_memory_bytes
+    from hilbertune.errors import ResourceLimitError
     from hilbertune.runs import check_inputs
     from hilbertune.sweeps import plan_sweep
 
     plan = plan_sweep(description)
-    seen = set()
+    seen, largest = set(), 0
     for trial in plan.trials:
         c = trial.config
         key = json.dumps([c["seed"], c["data"], c["encoding"], c["compute"]], sort_keys=True)
@@ -289,10 +291,28 @@ def _check_sweep_inputs(description) -> None:
             continue
         seen.add(key)
         try:
-            check_inputs(c)
+            _, _, blueprint, split = check_inputs(c)
         except InvalidInputError as exc:
             swept = ", ".join(f"{k}={v!r}" for k, v in trial.assignments)
             raise type(exc)(f"sweep trial {trial.trial_id} ({swept}): {exc}") from None
+        if not is_product(blueprint):
+            largest = max(largest, state_memory_bytes(
+                len(split.X_train) + len(split.X_test), blueprint.n_qubits))
+    parallel = min(workers, len(plan.trials))
+    local = scheduler is None or scheduler == "local"
+    physical = _physical_memory()
+    if local and physical and parallel > 1 and largest * parallel > physical:
+        raise ResourceLimitError(
+            f"{parallel} parallel trials need at least {largest * parallel / 2**30:.2f} GiB "
+            f"for their statevectors ({largest / 2**30:.2f} GiB each) but this machine has "
+            f"{physical / 2**30:.2f} GiB; use fewer --workers or fewer qubits")
+
+
+def _physical_memory() -> int:
+    try:
+        return os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES")
+    except (ValueError, OSError, AttributeError):
+        return 0
 
 
 def _one_line(exc) -> str:
