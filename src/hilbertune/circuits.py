@@ -198,6 +198,10 @@ def validate_features(blueprint: Blueprint, X, *, name: str = "X") -> np.ndarray
         rows = np.unique(np.nonzero(bad)[0])[:5].tolist()
         raise InvalidInputError(f"{name} contains NaN or infinite values (rows {rows}...); "
                                 "drop or impute them first")
+    # angles are computed in float32 by default: larger magnitudes overflow to inf / NaN
+    if np.abs(X).max() > 1e30:
+        raise InvalidInputError(f"{name} has values up to {np.abs(X).max():.3g}, beyond what "
+                                "rotation angles can hold; scale the features first")
     if blueprint.binary_features and not np.isin(X, (0.0, 1.0)).all():
         raise InvalidInputError(f"{name}: basis encoding takes binary features (0 or 1 only); "
                                 "binarize the data first or use another encoding")

@@ -46,9 +46,14 @@ def resolve_memory_budget(budget=None) -> int:
             raise InvalidInputError(f"memory budget {budget!r} not understood; write e.g. "
                                     "'2GiB', '500MB' or a number of bytes")
         budget = float(match.group(1)) * _UNITS[unit]
-    if not budget > 0:
-        raise InvalidInputError(f"memory budget must be positive, got {budget!r}")
-    return int(budget)
+    try:
+        whole = int(budget)
+    except (TypeError, ValueError, OverflowError):
+        whole = 0
+    if not whole >= 1:
+        raise InvalidInputError(f"memory budget must be a finite number of bytes >= 1, got "
+                                f"{budget!r}; write e.g. '2GiB'")
+    return whole
 
 
 # --------------------------------------------------------------------------- fidelity
