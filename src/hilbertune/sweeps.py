@@ -54,6 +54,7 @@ import html
 import io
 import itertools
 import json
+import logging
 import math
 import os
 import socket
@@ -399,7 +400,7 @@ def _make_row(trial: Trial, outcome: dict) -> dict:
     return row
 
 
-# --------------------------------------------------------------------------- one trial (worker side)
+# --------------------------------------------------------------------------- one trial (worker)
 
 def _claim_cpus(per_trial: int) -> tuple:
     """Lock ``per_trial`` free CPUs (lock files shared by every sweep on this machine).
@@ -535,8 +536,11 @@ def _open_dask(workers: int, scheduler: str, processes: bool, timeout: float) ->
     from dask.distributed import Client, LocalCluster
 
     if scheduler == "local":
+        # loopback only, no dashboard; ERROR-level logs hide the nanny's harmless "still
+        # alive after 4 s, killing" warnings when JAX workers are shut down
         cluster = LocalCluster(n_workers=workers, threads_per_worker=1, processes=processes,
-                               host="127.0.0.1", dashboard_address=None, scheduler_port=0)
+                               host="127.0.0.1", dashboard_address=None, scheduler_port=0,
+                               silence_logs=logging.ERROR)
         return _DaskRunner(Client(cluster), cluster, processes)
     address = _check_address(scheduler, timeout)
     try:
