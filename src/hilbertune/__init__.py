@@ -1,28 +1,67 @@
 """hilbertune: learn, diagnose, compare and export data-encoding circuits for quantum kernels.
 
-Public API; implementation lives in the submodules. Everything is simulated with JAX on the
-CPU: a simulated kernel is no evidence about hardware.
+Public API; the implementation lives in the submodules (data -> encodings/circuits ->
+kernels -> objectives/training -> diagnostics/hardware -> runs/report/qasm/sweeps).
+Everything is simulated with JAX on the CPU: a simulated kernel is no evidence about
+quantum hardware.
 """
 
 from hilbertune.circuits import (AngleRule, Blueprint, Step, encode_states, initial_params,
                                  is_product, product_factors, resource_counts)
+from hilbertune.config import resolve_config
+from hilbertune.data import (Dataset, Preprocessing, Split, invented_demo, load_bundled,
+                             load_csv, split_and_scale)
+from hilbertune.diagnostics import (alignment_of, compare_accuracies, concentration,
+                                    corrected_resampled_t_test, effective_dimension,
+                                    geometric_difference, linear_svm, mcnemar_exact,
+                                    repeated_split_scores, spectrum, tuned_rbf_svm)
 from hilbertune.encodings import (FAMILIES, amplitude_state, bit_flips, build_encoding,
                                   iqp_style, reuploading_layers, single_axis_rotations)
 from hilbertune.errors import (ArtifactError, HilbertuneError, InvalidInputError,
                                NotFittedError, ResourceLimitError, TrainingError)
+from hilbertune.hardware import (clip_eigenvalues, compute_uncompute_depolarizing,
+                                 density_matrix_kernel, depolarize_kernel, repair_gram,
+                                 restore_unit_diagonal, shift_spectrum, shot_budget,
+                                 shot_sampled_gram, shot_variance)
 from hilbertune.kernels import (FrozenKernel, fidelity_gram, interference_zero_probability,
                                 pauli_expectations, product_gram, projected_gram, quantum_gram)
+from hilbertune.landmarks import (NystroemMap, NystroemSVM, fit_nystroem, nystroem_features,
+                                  nystroem_gram, select_landmarks)
+from hilbertune.qasm import encoding_to_qasm3, kernel_circuit_to_qasm3
+from hilbertune.runs import execute_fit, predict_csv, reproduce_run
+from hilbertune.sweeps import plan_sweep, read_results, run_sweep, run_sweep_file
 
 __version__ = "0.1.0"
 
 __all__ = [
+    # circuits and encodings
     "AngleRule", "Blueprint", "Step", "encode_states", "initial_params", "is_product",
     "product_factors", "resource_counts",
     "FAMILIES", "amplitude_state", "bit_flips", "build_encoding", "iqp_style",
     "reuploading_layers", "single_axis_rotations",
-    "ArtifactError", "HilbertuneError", "InvalidInputError", "NotFittedError",
-    "ResourceLimitError", "TrainingError",
+    # kernels
     "FrozenKernel", "fidelity_gram", "interference_zero_probability", "pauli_expectations",
     "product_gram", "projected_gram", "quantum_gram",
+    # data
+    "Dataset", "Preprocessing", "Split", "invented_demo", "load_bundled", "load_csv",
+    "split_and_scale",
+    # diagnostics and baselines
+    "alignment_of", "compare_accuracies", "concentration", "corrected_resampled_t_test",
+    "effective_dimension", "geometric_difference", "linear_svm", "mcnemar_exact",
+    "repeated_split_scores", "spectrum", "tuned_rbf_svm",
+    # hardware and export
+    "clip_eigenvalues", "compute_uncompute_depolarizing", "density_matrix_kernel",
+    "depolarize_kernel", "repair_gram", "restore_unit_diagonal", "shift_spectrum",
+    "shot_budget", "shot_sampled_gram", "shot_variance",
+    "encoding_to_qasm3", "kernel_circuit_to_qasm3",
+    # scale
+    "NystroemMap", "NystroemSVM", "fit_nystroem", "nystroem_features", "nystroem_gram",
+    "select_landmarks",
+    # runs and sweeps
+    "resolve_config", "execute_fit", "predict_csv", "reproduce_run",
+    "plan_sweep", "read_results", "run_sweep", "run_sweep_file",
+    # errors
+    "ArtifactError", "HilbertuneError", "InvalidInputError", "NotFittedError",
+    "ResourceLimitError", "TrainingError",
     "__version__",
 ]
