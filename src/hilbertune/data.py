@@ -187,6 +187,11 @@ def _rows_to_labels(cells: list) -> np.ndarray:
     return np.asarray(values, dtype=np.float64)
 
 
+def _shown(cells: list) -> str:
+    """Cells joined for a one-line message (a cell with a line break is shown quoted)."""
+    return ", ".join(c if c.isprintable() else repr(c) for c in cells)
+
+
 def _rows_phrase(line_numbers: list) -> str:
     shown = ", ".join(str(n) for n in line_numbers[:5])
     more = f" and {len(line_numbers) - 5} more" if len(line_numbers) > 5 else ""
@@ -243,7 +248,7 @@ def load_csv(path, target: str, *, drop_missing: bool = False) -> Dataset:
         raise InvalidInputError(f"{name}: no header row found (only empty cells); add a "
                                 "header row with column names")
     if all(_is_number(cell) for cell in header):
-        raise InvalidInputError(f"{name}: the first row ({', '.join(header[:4])}...) looks "
+        raise InvalidInputError(f"{name}: the first row ({_shown(header[:4])}...) looks "
                                 "like data, not column names; add a header row")
     if any(not cell for cell in header):
         position = header.index("") + 1
@@ -257,7 +262,7 @@ def load_csv(path, target: str, *, drop_missing: bool = False) -> Dataset:
         close = difflib.get_close_matches(str(target), header, n=1, cutoff=0.5)
         hint = f"did you mean {close[0]!r}? " if close else ""
         raise InvalidInputError(f"{name}: no column named {target!r}; {hint}available "
-                                f"columns: {', '.join(header)}")
+                                f"columns: {_shown(header)}")
     if len(header) < 2:
         raise InvalidInputError(f"{name}: only the label column {target!r} is present; the "
                                 "file needs at least one feature column")
