@@ -90,16 +90,6 @@ def test_parse_assignment_never_raises_anything_else(text):
 
 
 @QUICK
-@given(budget=st.one_of(st.text(max_size=12), st.integers(-5, 10**15)))
-def test_memory_budget_strings_and_integers_parse_or_refuse(budget):
-    try:
-        value = resolve_memory_budget(budget)
-    except InvalidInputError:
-        return
-    assert isinstance(value, int) and value >= 0
-
-
-@QUICK
 @given(budget=st.one_of(st.text(max_size=12), st.integers(-5, 10**15),
                         st.floats(allow_nan=True, allow_infinity=True)))
 def test_memory_budget_is_positive_or_refused(budget):
@@ -350,9 +340,10 @@ def test_random_circuit_kernels_are_valid_gram_matrices(bp, seed):
     _check_gram(projected_gram(bp, params, X, gamma=1.3), n)
 
 
-# float32 (the state precision) holds values up to ~3.4e38; larger finite float64 features
-# are the subject of the xfail test below
-features = st.one_of(st.floats(-1e6, 1e6), st.sampled_from([math.nan, math.inf, -math.inf]))
+# ordinary values, non-finite ones, and finite float64 values beyond float32 (~3.4e38, the
+# precision of the states)
+features = st.one_of(st.floats(-1e6, 1e6), st.sampled_from([math.nan, math.inf, -math.inf]),
+                     st.floats(1e38, 1e300))
 
 
 @settings(max_examples=30, deadline=None, suppress_health_check=[HealthCheck.too_slow])
@@ -375,8 +366,7 @@ def test_features_beyond_float32_range_are_refused():
     params = initial_params(bp)
     X = np.array([[0.0, 0.0], [1e39, 0.0]])  # finite in float64, inf in float32
     with pytest.raises(InvalidInputError):
-        K = quantum_gram(bp, params, X)
-        assert np.isfinite(np.asarray(K)).all()  # reached only if nothing was raised
+        quantum_gram(bp, params, X)
 
 
 # --------------------------------------------------------------------------- training

@@ -1,0 +1,679 @@
+"""Hardening: bad input on every command, safe artifacts, crash safety, determinism,
+numerical health and resource guards.
+
+Bad input must give ONE line on stderr that says what is wrong and how to fix it, exit code
+2, and no file written (nothing partial). The end-to-end `fit` cases of tests/test_cli.py
+are not repeated here; this module covers the other commands and the `fit` inputs that
+module leaves out. The crash test kills a real `python -m hilbertune.cli fit` process with
+SIGKILL and checks that rerunning the same command resumes to the identical result.
+"""
+
+from __future__ import annotations
+
+import csv
+import json
+import math
+import os
+import shutil
+import signal
+import subprocess
+import sys
+import time
+import tomllib
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from hilbertune import artifacts, cli
+from hilbertune.errors import (ArtifactError, HilbertuneError, InvalidInputError,
+                               NotFittedError, ResourceLimitError, TrainingError)
+
+TINY = ["--set", "training.steps=4", "--set", "evaluation.repeats=2", "--set",
+        "svm.cv_folds=2", "--set", "training.patience=0", "--set", "hardware.enabled=false"]
+
+
+# --------------------------------------------------------------------------- helpers
+
+def run(args, capsys):
+    code = cli.main([str(a) for a in args])
+    out, err = capsys.readouterr()
+    return code, out, err
+
+
+def snapshot(path: Path):
+    """Every file below ``path`` with its size and modification time (None if absent)."""
+    if not path.exists():
+        return None
+    if path.is_file():
+        return {".": (path.stat().st_size, path.stat().st_mtime_ns)}
+    return {str(p.relative_to(path)): (p.stat().st_size, p.stat().st_mtime_ns)
+            for p in sorted(path.rglob("*"))}
+
+
+def assert_refused(code, err, fragment):
+    """Exit 2, one line naming the problem, no traceback."""
+    assert code == 2, err
+    lines = err.strip().splitlines()
+    assert len(lines) == 1, err
+    assert lines[0].startswith("hilbertune: error: ") and "Traceback" not in err
+    assert fragment in lines[0], lines[0]
+
+
+def write_csv(path, header, rows):
+    with open(path, "w", newline="") as handle:
+        writer = csv.writer(handle)
+        writer.writerow(header)
+        writer.writerows(rows)
+    return path
+
+
+@pytest.fixture(scope="module")
+def moons_csv(tmp_path_factory):
+    from sklearn.datasets import make_moons  # outside data: scikit-learn's generator
+
+    X, y = make_moons(n_samples=48, noise=0.15, random_state=1)
+    path = tmp_path_factory.mktemp("data") / "moons.csv"
+    return write_csv(path, ["a", "b", "kind"],
+                     [[f"{u:.5f}", f"{v:.5f}", "upper" if k else "lower"]
+                      for (u, v), k in zip(X, y)])
+
+
+@pytest.fixture(scope="module")
+def finished_run(moons_csv, tmp_path_factory):
+    out = tmp_path_factory.mktemp("runs") / "tiny"
+    code = cli.main(["fit", "--data", str(moons_csv), "--target", "kind", "--qubits", "2",
+                     "--seed", "5", "--out", str(out), "--quiet", *TINY])
+    assert code == 0
+    return out
+
+
+@pytest.fixture
+def run_copy(finished_run, tmp_path):
+    """A private copy of the finished run, free to damage."""
+    copy = tmp_path / "copy"
+    shutil.copytree(finished_run, copy)
+    return copy
+
+
+def rehash(run_dir: Path, name: str) -> None:
+    """Update the manifest entry of ``name`` so only the content check can catch it."""
+    manifest = json.loads((run_dir / "manifest.json").read_text())
+    manifest["artifacts"][name] = artifacts.sha256_file(run_dir / name)
+    (run_dir / "manifest.json").write_text(json.dumps(manifest))
+
+
+# --------------------------------------------------------------------------- predict
+
+BAD_PREDICT_CSV = [
+    (None, "does not exist"),
+    ("", "empty"),
+    (b"PK\x03\x04\x00\x00binary", "binary"),
+    ("1.0,2.0\n3.0,4.0\n", "missing feature column"),            # no header
+    ("a,b,b\n1,2,3\n", "duplicate column"),
+    ("a,kind\n1,x\n", "missing feature column(s) ['b']"),
+    ("a,b\n", "no data rows"),
+    ("a,b\n1,hello\n", "not numeric"),
+    ("a,b\n1,nan\n", "missing or infinite"),
+    ("a,b\n1,inf\n", "missing or infinite"),
+    ("a,b\n1,2,3\n", "cells but the header"),
+    (",,\n,,\n", "no header row"),
+    (b"a;b\n\xff\xfe\n", "not UTF-8"),
+]
+
+
+@pytest.mark.parametrize("content, fragment", BAD_PREDICT_CSV)
+def test_predict_refuses_a_bad_csv_in_one_line(finished_run, tmp_path, capsys, content,
+                                               fragment):
+    path = tmp_path / "new.csv"
+    if isinstance(content, bytes):
+        path.write_bytes(content)
+    elif content is not None:
+        path.write_text(content)
+    before = snapshot(finished_run)
+    out = tmp_path / "predictions.csv"
+    code, stdout, err = run(["predict", finished_run, path, "--out", out], capsys)
+    assert_refused(code, err, fragment)
+    assert not out.exists() and stdout == ""
+    assert snapshot(finished_run) == before
+
+
+def test_predict_refuses_a_folder_as_csv_or_as_output(finished_run, moons_csv, tmp_path,
+                                                      capsys):
+    code, _, err = run(["predict", finished_run, tmp_path], capsys)
+    assert_refused(code, err, "is a folder")
+    code, _, err = run(["predict", finished_run, moons_csv, "--out", tmp_path], capsys)
+    assert_refused(code, err, "is a folder")
+    assert list(tmp_path.iterdir()) == []
+
+
+# --------------------------------------------------------------------------- not a run
+
+def _interrupted_run(path: Path) -> Path:
+    (path / "checkpoints").mkdir(parents=True)
+    (path / "config.toml").write_text("seed = 0\n")
+    return path
+
+
+NOT_A_RUN = [
+    ("missing", lambda p: p / "nope", "not found"),
+    ("empty folder", lambda p: (p / "empty").mkdir() or p / "empty", "no manifest.json"),
+    ("a file", lambda p: write_csv(p / "x.csv", ["a"], [[1]]), "is a file"),
+    ("interrupted run", lambda p: _interrupted_run(p / "half"), "resumes with `hilbertune fit`"),
+]
+
+
+@pytest.mark.parametrize("command", ["report", "export", "reproduce", "predict"])
+@pytest.mark.parametrize("label, make, fragment", NOT_A_RUN, ids=[c[0] for c in NOT_A_RUN])
+def test_commands_on_something_that_is_not_a_finished_run(tmp_path, moons_csv, capsys,
+                                                          command, label, make, fragment):
+    target = make(tmp_path)
+    before = snapshot(tmp_path)
+    extra = {"predict": [moons_csv], "reproduce": ["--keep", tmp_path / "keep"],
+             "export": ["--out", tmp_path / "c.qasm"], "report": []}[command]
+    code, _, err = run([command, target, *extra], capsys)
+    assert_refused(code, err, fragment)
+    assert snapshot(tmp_path) == before  # no report, no keep dir, no export file
+
+
+# --------------------------------------------------------------------------- safe artifacts
+
+@pytest.mark.parametrize("command", ["predict", "reproduce", "export", "report"])
+def test_a_modified_artifact_is_refused_by_name_on_every_reading_command(run_copy, moons_csv,
+                                                                         capsys, command):
+    arrays = dict(np.load(run_copy / "params.npz", allow_pickle=False))
+    arrays["param_log_bandwidth"] = arrays["param_log_bandwidth"] + np.float32(0.5)
+    np.savez(run_copy / "params.npz", **arrays)
+    extra = [moons_csv] if command == "predict" else []
+    code, _, err = run([command, run_copy, *extra], capsys)
+    assert_refused(code, err, "params.npz")
+    assert "modified" in err
+
+
+@pytest.mark.parametrize("command", ["predict", "reproduce", "export", "report"])
+def test_a_newer_format_is_refused_on_every_reading_command(run_copy, moons_csv, capsys,
+                                                            command):
+    manifest = json.loads((run_copy / "manifest.json").read_text())
+    manifest["format_version"] = artifacts.FORMAT_VERSION + 1
+    (run_copy / "manifest.json").write_text(json.dumps(manifest))
+    extra = [moons_csv] if command == "predict" else []
+    code, _, err = run([command, run_copy, *extra], capsys)
+    assert_refused(code, err, "newer hilbertune")
+    assert "upgrade" in err
+
+
+class _Tripwire:
+    """Unpickling this object creates a file: proof that a loader ran pickle."""
+
+    def __init__(self, marker):
+        self.marker = marker
+
+    def __reduce__(self):
+        return (Path.touch, (Path(self.marker),))
+
+
+@pytest.mark.parametrize("command", ["predict", "reproduce"])
+def test_pickled_arrays_are_never_unpickled_even_with_a_matching_hash(run_copy, moons_csv,
+                                                                      tmp_path, capsys,
+                                                                      command):
+    marker = tmp_path / "pickle-ran"
+    arrays = dict(np.load(run_copy / "params.npz", allow_pickle=False))
+    arrays["param_weights"] = np.array([_Tripwire(str(marker))], dtype=object)
+    np.savez(run_copy / "params.npz", **arrays)  # numpy pickles object arrays here
+    rehash(run_copy, "params.npz")  # the hash matches: only the loader can refuse it
+    extra = [moons_csv] if command == "predict" else []
+    code, _, err = run([command, run_copy, *extra], capsys)
+    assert_refused(code, err, "params.npz could not be read")
+    assert not marker.exists()
+
+
+@pytest.mark.parametrize("damage, fragment", [
+    ("not json {", "manifest.json could not be read"),
+    ("[1, 2]", "not a hilbertune manifest"),
+    ('{"format_version": 1, "artifacts": {"../secret": "00"}}', "not a file of the run"),
+    ('{"format_version": "1", "artifacts": {}}', "no valid format_version"),
+    ('{"format_version": 1, "artifacts": {}}', "does not cover config.toml"),
+])
+def test_a_damaged_manifest_is_refused_in_one_line(run_copy, capsys, damage, fragment):
+    (run_copy / "manifest.json").write_text(damage)
+    code, _, err = run(["export", run_copy], capsys)
+    assert_refused(code, err, fragment)
+
+
+def test_params_without_the_svm_arrays_are_refused(run_copy, moons_csv, capsys):
+    arrays = dict(np.load(run_copy / "params.npz", allow_pickle=False))
+    del arrays["X_train"]
+    artifacts.write_npz(run_copy / "params.npz", arrays)
+    rehash(run_copy, "params.npz")
+    code, _, err = run(["predict", run_copy, moons_csv], capsys)
+    assert_refused(code, err, "params.npz")
+
+
+def test_atomic_write_keeps_the_old_file_when_writing_fails(tmp_path, monkeypatch):
+    target = tmp_path / "summary.json"
+    artifacts.write_json(target, {"v": 1})
+
+    def broken_fsync(fd):
+        raise OSError(28, "No space left on device")
+
+    monkeypatch.setattr(os, "fsync", broken_fsync)
+    with pytest.raises(OSError):
+        artifacts.write_json(target, {"v": 2})
+    monkeypatch.undo()
+    assert json.loads(target.read_text()) == {"v": 1}
+    assert [p.name for p in tmp_path.iterdir()] == ["summary.json"]  # no temporary left
+
+
+def test_object_arrays_are_refused_before_anything_is_written(tmp_path):
+    with pytest.raises(TypeError, match="dtype object"):
+        artifacts.write_npz(tmp_path / "p.npz", {"o": np.array([None, 1], dtype=object)})
+    assert list(tmp_path.iterdir()) == []
+
+
+# --------------------------------------------------------------------------- report, export
+
+def test_export_and_report_on_a_good_run_write_only_what_they_should(finished_run, tmp_path,
+                                                                    capsys):
+    out = tmp_path / "circuit.qasm"
+    code, _, err = run(["export", finished_run, "--out", out, "--quiet"], capsys)
+    assert code == 0, err
+    assert out.read_text().startswith("OPENQASM 3")
+    code, _, err = run(["export", finished_run, "--out", tmp_path], capsys)
+    assert_refused(code, err, "is a folder")
+
+
+# --------------------------------------------------------------------------- sweep
+
+SWEEPS = [
+    ("[grid]\nseed = [1,\n", "not valid TOML"),
+    ('[grid]\n"training.stpes" = [1, 2]\n', "did you mean 'training.steps'"),
+    ("[grdi]\nseed = [1, 2]\n", "unknown sweep table"),
+    ('[base]\ntraining.steps = "x"\n[grid]\nseed = [1, 2]\n', "must be int"),
+    ('[grid]\n"training.steps" = [0, 2]\n', "must be positive"),
+    ('[base]\ntraining.learning_rate = -0.1\n[grid]\nseed = [1, 2]\n', "must be positive"),
+    ('[grid]\n"evaluation.shots" = [0]\n', "must be positive"),
+    ("", "varies nothing"),
+    ('[base]\ndata.source = "csv"\ndata.path = "no/such.csv"\ndata.target = "y"\n'
+     '[grid]\nseed = [1, 2]\n', "does not exist"),
+    ('[base]\ndata.source = "moons"\ndata.samples = 40\n'
+     '[grid]\n"encoding.qubits" = [2, 30]\n', "GiB"),
+]
+
+
+@pytest.mark.parametrize("text, fragment", SWEEPS)
+def test_sweep_refuses_bad_descriptions_before_writing(tmp_path, capsys, text, fragment):
+    description = tmp_path / "sweep.toml"
+    description.write_text(text)
+    out = tmp_path / "sweep"
+    code, _, err = run(["sweep", description, "--out", out], capsys)
+    assert_refused(code, err, fragment)
+    assert not out.exists()
+
+
+def test_sweep_refuses_missing_binary_files_and_bad_worker_counts(tmp_path, capsys):
+    out = tmp_path / "sweep"
+    code, _, err = run(["sweep", tmp_path / "nope.toml", "--out", out], capsys)
+    assert_refused(code, err, "not found")
+    (tmp_path / "bin.toml").write_bytes(b"\x00\xff\xfe")
+    code, _, err = run(["sweep", tmp_path / "bin.toml", "--out", out], capsys)
+    assert_refused(code, err, "not UTF-8")
+    (tmp_path / "ok.toml").write_text("[grid]\nseed = [1, 2]\n")
+    code, _, err = run(["sweep", tmp_path / "ok.toml", "--workers", "0", "--out", out], capsys)
+    assert_refused(code, err, "--workers")
+    assert not out.exists()
+
+
+def test_sweep_refuses_parallel_trials_that_do_not_fit_in_memory_together(tmp_path, capsys,
+                                                                         monkeypatch):
+    # 48 samples x 2**16 amplitudes x 8 bytes = 24 MiB per trial (common practice: complex64)
+    description = tmp_path / "sweep.toml"
+    description.write_text('[base]\ndata.source = "moons"\ndata.samples = 48\n'
+                           'encoding.qubits = 16\n[grid]\nseed = [1, 2]\n')
+    monkeypatch.setattr(cli, "_physical_memory", lambda: 40 * 2**20)
+    out = tmp_path / "sweep"
+    code, _, err = run(["sweep", description, "--workers", "2", "--out", out], capsys)
+    assert_refused(code, err, "0.05 GiB")  # two trials x 24 MiB
+    assert "fewer --workers" in err and not out.exists()
+
+
+# --------------------------------------------------------------------------- demo
+
+def test_demo_refuses_an_existing_directory_and_leaves_it_alone(finished_run, tmp_path,
+                                                                capsys):
+    before = snapshot(finished_run)
+    code, _, err = run(["demo", "--out", finished_run], capsys)
+    assert_refused(code, err, "--overwrite")
+    assert snapshot(finished_run) == before
+    afile = tmp_path / "file"
+    afile.write_text("x")
+    code, _, err = run(["demo", "--out", afile], capsys)
+    assert_refused(code, err, "is a file")
+    code, _, err = run(["demo", "--seed", "-1", "--out", tmp_path / "d"], capsys)
+    assert_refused(code, err, "non-negative")
+    code, _, err = run(["demo", "--seed", "x"], capsys)
+    assert code == 2 and len(err.strip().splitlines()) == 1
+    assert not (tmp_path / "d").exists()
+
+
+# --------------------------------------------------------------------------- fit (the rest)
+
+FIT_TOML = [
+    ('[training]\nstpes = 3\n', "did you mean 'training.steps'"),
+    ('[training]\nsteps = "ten"\n', "must be int"),
+    ('[training]\nsteps = 0\n', "must be positive"),
+    ('[training]\nlearning_rate = -0.5\n', "must be positive"),
+    ('[evaluation]\nshots = -1\n', "must be positive"),
+    ('[hardware]\nshots_grid = [100, 0]\n', "positive integers"),
+    ('[compute]\nmemory_budget = "lots"\n', "not understood"),
+    ('[encoding]\nfamily = "quantum"\n', "one of"),
+    ("seed = 1.5\n", "must be int"),
+    ('training = 3\n', "unknown config key"),
+]
+
+
+@pytest.mark.parametrize("text, fragment", FIT_TOML)
+def test_fit_refuses_a_bad_config_file(moons_csv, tmp_path, capsys, text, fragment):
+    path = tmp_path / "c.toml"
+    path.write_text(text)
+    out = tmp_path / "out"
+    code, _, err = run(["fit", path, "--data", moons_csv, "--target", "kind", "--out", out],
+                       capsys)
+    assert_refused(code, err, fragment)
+    assert not out.exists()
+
+
+FIT_DATA = [
+    ("a,b,kind\n1,2,x\n3,4,\n", "empty or NaN label"),
+    ("kind\nx\ny\n", "at least one feature"),
+    ("a,b,kind\n", "no data rows"),
+    ("a,b,kind\n1,2,x\n3,4,y\n5,6,z\n", "single sample"),
+]
+
+
+@pytest.mark.parametrize("content, fragment", FIT_DATA)
+def test_fit_refuses_more_bad_csv_files(tmp_path, capsys, content, fragment):
+    path = tmp_path / "d.csv"
+    path.write_text(content)
+    out = tmp_path / "out"
+    code, _, err = run(["fit", "--data", path, "--target", "kind", "--out", out], capsys)
+    assert_refused(code, err, fragment)
+    assert not out.exists()
+
+
+def test_fit_refuses_a_data_file_as_config_and_a_misspelt_dataset(moons_csv, tmp_path, capsys):
+    code, _, err = run(["fit", moons_csv, "--out", tmp_path / "o"], capsys)
+    assert_refused(code, err, "--data")
+    code, _, err = run(["fit", "--data", "irsi", "--out", tmp_path / "o"], capsys)
+    assert_refused(code, err, "did you mean 'iris'")
+    assert not (tmp_path / "o").exists()
+
+
+def test_projected_kernel_with_too_many_qubits_gives_the_estimate(moons_csv, tmp_path, capsys):
+    # 48 rows x 2**30 amplitudes x 8 bytes (complex64) = 384 GiB of statevectors
+    code, _, err = run(["fit", "--data", moons_csv, "--target", "kind", "--qubits", "30",
+                        "--set", "encoding.kind=projected", "--out", tmp_path / "o"], capsys)
+    assert_refused(code, err, "384.00 GiB")
+    assert "fewer qubits" in err and not (tmp_path / "o").exists()
+
+
+def test_a_fit_that_fails_after_creating_its_directory_removes_it(moons_csv, tmp_path, capsys):
+    # ridge_kfold with more folds than training rows is only detected by the training code
+    out = tmp_path / "out"
+    code, _, err = run(["fit", "--data", moons_csv, "--target", "kind", "--qubits", "2",
+                        "--out", out, "--set", "training.objective=ridge_kfold",
+                        "--set", "training.folds=40", *TINY], capsys)
+    assert_refused(code, err, "folds")
+    assert not out.exists()
+
+
+# --------------------------------------------------------------------------- exit codes
+
+@pytest.mark.parametrize("error, code, prefix", [
+    (InvalidInputError("bad value; use a good one"), 2, "error"),
+    (ResourceLimitError("needs 3 GiB; use fewer qubits"), 2, "error"),
+    (ArtifactError("x.npz was modified; restore it"), 2, "error"),
+    (NotFittedError("call fit first"), 1, "failed"),
+    (TrainingError("gradient not finite; lower the learning rate"), 1, "failed"),
+    (HilbertuneError("something else"), 1, "failed"),
+    (MemoryError(), 1, "failed"),
+    (OSError(13, "Permission denied", "/x"), 1, "failed"),
+    (KeyboardInterrupt(), 130, "interrupted"),
+])
+def test_exit_codes_match_the_table_in_developers_md(monkeypatch, capsys, error, code, prefix):
+    def command(args, console):
+        raise error
+
+    monkeypatch.setitem(cli.COMMANDS, "export", command)
+    got, out, err = run(["export", "anything"], capsys)
+    assert got == code
+    assert err.startswith(f"hilbertune: {prefix}") and len(err.strip().splitlines()) == 1
+
+
+def test_an_error_message_with_line_breaks_still_prints_as_one_line(monkeypatch, capsys):
+    def command(args, console):
+        raise InvalidInputError("column 'a\nb' is not numeric;\nfix it")
+
+    monkeypatch.setitem(cli.COMMANDS, "report", command)
+    code, _, err = run(["report", "x"], capsys)
+    assert_refused(code, err, "column 'a b' is not numeric; fix it")
+
+
+# --------------------------------------------------------------------------- crash safety
+
+CRASH_STEPS = 300
+CRASH_ARGS = ["--qubits", "2", "--seed", "11", "--quiet",
+              "--set", f"training.steps={CRASH_STEPS}", "--set", "training.checkpoint_every=10",
+              "--set", "training.patience=0", "--set", "evaluation.repeats=2",
+              "--set", "svm.cv_folds=2", "--set", "hardware.enabled=false"]
+DETERMINISTIC = ("params.npz", "history.csv", "kernels.npz", "config.toml", "circuit.qasm")
+
+
+def fit_command(csv_path, out):
+    return [sys.executable, "-m", "hilbertune.cli", "fit", "--data", str(csv_path),
+            "--target", "kind", "--out", str(out), *CRASH_ARGS]
+
+
+@pytest.fixture(scope="module")
+def reference_run(moons_csv, tmp_path_factory):
+    """An uninterrupted run in a fresh process."""
+    out = tmp_path_factory.mktemp("reference") / "run"
+    done = subprocess.run(fit_command(moons_csv, out), capture_output=True, text=True,
+                          timeout=300)
+    assert done.returncode == 0, done.stderr
+    return out
+
+
+def temporaries(path: Path) -> list:
+    return [p for p in path.rglob("*") if p.name.endswith(".tmp") or p.name.startswith(".tmp-")]
+
+
+@pytest.mark.slow
+def test_a_killed_fit_resumes_to_the_identical_result(moons_csv, reference_run, tmp_path,
+                                                      monkeypatch, capsys):
+    out = tmp_path / "run"
+    process = subprocess.Popen(fit_command(moons_csv, out), stdout=subprocess.DEVNULL,
+                               stderr=subprocess.DEVNULL)
+    marker = out / "checkpoints" / "checkpoint.json"
+    deadline = time.monotonic() + 240
+    try:
+        while not marker.exists():
+            assert process.poll() is None, "the fit ended before writing a checkpoint"
+            assert time.monotonic() < deadline, "no checkpoint within 240 s"
+            time.sleep(0.005)
+        process.send_signal(signal.SIGKILL)
+        process.wait(timeout=30)
+    finally:
+        if process.poll() is None:
+            process.kill()
+    assert process.returncode == -signal.SIGKILL
+
+    # what the killed process left: complete files under their final names, no manifest
+    assert not (out / "manifest.json").exists()
+    saved = tomllib.loads((out / "config.toml").read_text())
+    assert saved["training"]["steps"] == CRASH_STEPS
+    state = json.loads(marker.read_text())
+    with np.load(out / "checkpoints" / "checkpoint.npz", allow_pickle=False) as npz:
+        assert len(npz.files) > 0
+    assert 0 < state["step"] < CRASH_STEPS, "the kill did not land inside training"
+
+    # rerun the same command (in this process, to watch the checkpoint being loaded)
+    from hilbertune import training
+
+    resumed_at = []
+    original = training._load_checkpoint
+
+    def spy(*args, **kwargs):
+        loaded = original(*args, **kwargs)
+        if loaded is not None:
+            resumed_at.append(loaded[0]["next_step"])
+        return loaded
+
+    monkeypatch.setattr(training, "_load_checkpoint", spy)
+    argv = fit_command(moons_csv, out)[3:]
+    code, _, err = run(argv, capsys)
+    assert code == 0, err
+    assert resumed_at and resumed_at[0] >= state["step"] > 0
+    for name in DETERMINISTIC:
+        assert (out / name).read_bytes() == (reference_run / name).read_bytes(), name
+    assert temporaries(out) == [] and not (out / "checkpoints").exists()
+    artifacts.verify_run(out)
+
+
+@pytest.mark.slow
+def test_two_fresh_processes_write_bit_identical_results(moons_csv, reference_run, tmp_path):
+    out = tmp_path / "again"
+    done = subprocess.run(fit_command(moons_csv, out), capture_output=True, text=True,
+                          timeout=300)
+    assert done.returncode == 0, done.stderr
+    for name in DETERMINISTIC:
+        assert (out / name).read_bytes() == (reference_run / name).read_bytes(), name
+    history = (out / "history.csv").read_text().splitlines()
+    assert len(history) == CRASH_STEPS + 2  # header + steps 0..CRASH_STEPS
+    assert "wall_time" not in history[0]
+    summary = json.loads((out / "summary.json").read_text())
+    assert summary["training"]["wall_time_s"] > 0
+
+
+def test_a_run_killed_before_its_first_checkpoint_resumes(moons_csv, tmp_path, capsys):
+    from hilbertune import config as cfg
+
+    out = tmp_path / "run"
+    argv = ["fit", "--data", moons_csv, "--target", "kind", "--qubits", "2", "--out", out,
+            "--quiet", *TINY]
+    config = cli._fit_config(cli.build_parser().parse_args([str(a) for a in argv]))
+    out.mkdir()
+    (out / "config.toml").write_text(cfg.dump_toml(config))  # all a killed start leaves
+    (out / ".params.npz.x1y2.tmp").write_bytes(b"half")  # a write cut off by the kill
+    code, _, err = run(argv, capsys)
+    assert code == 0, err
+    assert temporaries(out) == []
+    artifacts.verify_run(out)
+    # a different config in the same directory is not taken for the same run
+    code, _, err = run([*argv[:-len(TINY)], *TINY, "--seed", "9"], capsys)
+    assert_refused(code, err, "--overwrite")
+
+
+# --------------------------------------------------------------------------- numerics
+
+def test_float32_and_float64_grams_agree():
+    import jax
+    import jax.numpy as jnp
+
+    from hilbertune.circuits import initial_params
+    from hilbertune.encodings import build_encoding
+    from hilbertune.kernels import projected_gram, quantum_gram
+
+    rng = np.random.default_rng(4)
+    X = rng.uniform(0, math.pi, size=(6, 3))
+    for bp in (build_encoding("layered", 3, layers=2, entangler="ring"),
+               build_encoding("iqp", 3, reps=2)):
+        params = initial_params(bp, jax.random.key(1), bandwidth=0.8, bias_scale=0.3)
+        single = np.asarray(quantum_gram(bp, params, X), np.float64)
+        proj_single = np.asarray(projected_gram(bp, params, X), np.float64)
+        with jax.enable_x64(True):
+            double = np.asarray(quantum_gram(bp, params, X, dtype=jnp.complex128))
+            proj_double = np.asarray(projected_gram(bp, params, X, dtype=jnp.complex128))
+        # complex64 round-off: ~1e-7 per operation, a few dozen gates (common practice)
+        np.testing.assert_allclose(single, double, atol=2e-5)
+        np.testing.assert_allclose(proj_single, proj_double, atol=2e-5)
+        assert double.dtype == np.float64
+
+
+@pytest.mark.parametrize("bandwidth", [1e-4, 1e4])
+def test_extreme_bandwidths_keep_gradients_finite_or_stop_clearly(bandwidth):
+    from hilbertune.encodings import build_encoding
+    from hilbertune.training import TrainingSettings, train_encoding
+
+    rng = np.random.default_rng(0)
+    X = rng.uniform(0, math.pi, size=(16, 2))
+    y = (X[:, 0] > X[:, 1]).astype(int)
+    bp = build_encoding("layered", 2, layers=1)
+    settings = TrainingSettings(steps=3, bandwidth=bandwidth, validation_fraction=0.25,
+                                patience=0)
+    try:
+        result = train_encoding(bp, X, y, settings, seed=0)
+    except TrainingError as exc:
+        assert "not finite" in str(exc) and "bandwidth" in str(exc)
+        return
+    norms = [row["grad_norm"] for row in result.history]
+    assert norms and all(math.isfinite(v) for v in norms)
+    for value in result.params.values():
+        assert np.isfinite(np.asarray(value)).all()
+    if "non-finite" in (result.stop_reason or ""):
+        assert "kept the parameters" in result.stop_reason
+
+
+def test_gradient_of_the_alignment_is_finite_at_extreme_bandwidths():
+    import jax
+    import jax.numpy as jnp
+
+    from hilbertune import objectives
+    from hilbertune.circuits import initial_params
+    from hilbertune.encodings import build_encoding
+    from hilbertune.kernels import gram_for_training
+
+    bp = build_encoding("iqp", 2, reps=1)
+    X = jnp.asarray(np.random.default_rng(1).uniform(0, math.pi, (8, 2)), jnp.float32)
+    y = jnp.asarray([0, 1] * 4)
+    mask = jnp.ones(8, bool)
+    target = objectives.target_matrix(y, 2)
+    @jax.jit
+    def gradient(p):
+        def loss(q):
+            return -objectives.centered_alignment(gram_for_training(bp, q, X), target, mask)
+        return jax.grad(loss)(p)
+
+    for bandwidth in (1e-4, 1e4):
+        grads = gradient(initial_params(bp, jax.random.key(0), bandwidth=bandwidth))
+        for name, g in grads.items():
+            assert np.isfinite(np.asarray(g)).all(), (bandwidth, name)
+
+
+# --------------------------------------------------------------------------- resource guards
+
+def test_gram_refuses_before_allocating_with_the_estimate():
+    from hilbertune.circuits import initial_params
+    from hilbertune.encodings import build_encoding
+    from hilbertune.kernels import quantum_gram
+
+    bp = build_encoding("layered", 2, n_qubits=26, layers=1)
+    X = np.zeros((10, 2))
+    # 10 states x 2**26 amplitudes x 8 bytes = 5 GiB > 1 GiB (common practice: complex64)
+    with pytest.raises(ResourceLimitError, match=r"5\.00 GiB"):
+        quantum_gram(bp, initial_params(bp), X, memory_budget="1GiB")
+    small = build_encoding("layered", 2, n_qubits=3, layers=1)
+    # states fit (1 KiB) but a 200 x 200 float32 Gram (160 KB) does not fit in 100 KB
+    with pytest.raises(ResourceLimitError, match="Gram"):
+        quantum_gram(small, initial_params(small), np.zeros((200, 2)), memory_budget="100KB")
+
+
+def test_density_matrix_simulation_refuses_too_many_qubits():
+    from hilbertune import hardware
+    from hilbertune.encodings import build_encoding
+
+    n = hardware.DENSITY_MATRIX_MAX_QUBITS + 1
+    bp = build_encoding("angle", n)
+    with pytest.raises(ResourceLimitError, match="density-matrix"):
+        hardware.density_matrix_kernel(bp, {"weights": np.ones(n), "biases": np.zeros(n),
+                                            "log_bandwidth": np.float32(0.0)},
+                                       np.zeros((2, n)))
