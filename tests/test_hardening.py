@@ -323,6 +323,25 @@ def test_sweep_refuses_missing_binary_files_and_bad_worker_counts(tmp_path, caps
     assert not out.exists()
 
 
+def test_sweep_refuses_an_output_directory_of_another_sweep_or_a_file(tmp_path, capsys):
+    description = tmp_path / "sweep.toml"
+    description.write_text('[base]\ndata.source = "moons"\ndata.samples = 40\n'
+                           '[grid]\nseed = [1, 2]\n')
+    other = tmp_path / "other"
+    other.mkdir()
+    (other / "sweep.json").write_text(json.dumps({"name": "old", "description_hash": "0" * 64}))
+    (other / "results.csv").write_text("trial_id,status\n")
+    before = snapshot(other)
+    code, _, err = run(["sweep", description, "--out", other], capsys)
+    assert_refused(code, err, "different sweep")
+    assert snapshot(other) == before
+    afile = tmp_path / "file"
+    afile.write_text("x")
+    code, _, err = run(["sweep", description, "--out", afile], capsys)
+    assert_refused(code, err, "is a file")
+    assert afile.read_text() == "x"
+
+
 def test_sweep_refuses_parallel_trials_that_do_not_fit_in_memory_together(tmp_path, capsys,
                                                                          monkeypatch):
     # 48 samples x 2**16 amplitudes x 8 bytes = 24 MiB per trial (common practice: complex64)
@@ -585,18 +604,20 @@ def test_float32_and_float64_grams_agree():
 
     rng = np.random.default_rng(4)
     X = rng.uniform(0, math.pi, size=(6, 3))
-    for bp in (build_encoding("layered", 3, layers=2, entangler="ring"),
-               build_encoding("iqp", 3, reps=2)):
+    # complex64 round-off: ~1e-7 per operation, a few dozen gates (common practice)
+    for bp, projected in ((build_encoding("layered", 3, layers=2, entangler="ring"), True),
+                          (build_encoding("iqp", 3, reps=2), False)):
         params = initial_params(bp, jax.random.key(1), bandwidth=0.8, bias_scale=0.3)
         single = np.asarray(quantum_gram(bp, params, X), np.float64)
-        proj_single = np.asarray(projected_gram(bp, params, X), np.float64)
         with jax.enable_x64(True):
             double = np.asarray(quantum_gram(bp, params, X, dtype=jnp.complex128))
-            proj_double = np.asarray(projected_gram(bp, params, X, dtype=jnp.complex128))
-        # complex64 round-off: ~1e-7 per operation, a few dozen gates (common practice)
         np.testing.assert_allclose(single, double, atol=2e-5)
-        np.testing.assert_allclose(proj_single, proj_double, atol=2e-5)
         assert double.dtype == np.float64
+        if projected:
+            proj_single = np.asarray(projected_gram(bp, params, X), np.float64)
+            with jax.enable_x64(True):
+                proj_double = np.asarray(projected_gram(bp, params, X, dtype=jnp.complex128))
+            np.testing.assert_allclose(proj_single, proj_double, atol=2e-5)
 
 
 @pytest.mark.parametrize("bandwidth", [1e-4, 1e4])

@@ -8,12 +8,12 @@ Two kinds of property:
   would see from the command line.
 - kernel validity: a fidelity kernel is ``|<psi(x)|psi(x')>|^2`` with normalized states,
   so its Gram is symmetric, has unit diagonal and lies in [0, 1] (Cauchy-Schwarz; common
-  practice, e.g. Schuld & Killoran, PRL 122, 040504 (2019)). The projected kernel
-  ``exp(-gamma * d^2)`` of Huang et al., Nat. Commun. 12, 2631 (2021) has the same three
-  properties (d = 0 on the diagonal, d^2 >= 0).
+  practice, e.g. Schuld & Killoran, PRL 122, 040504 (2019), from memory). The projected
+  kernel ``exp(-gamma * d^2)`` of Huang et al., Nat. Commun. 12, 2631 (2021) has the same
+  three properties (d = 0 on the diagonal, d^2 >= 0).
 
-Example counts are small (the whole module runs in well under a minute); the database of
-failing examples hypothesis keeps makes a found failure reproduce on the next run.
+Example counts are small (the module takes about a minute on a busy 2-core machine); the
+database of failing examples hypothesis keeps makes a found failure reproduce next time.
 """
 
 from __future__ import annotations
