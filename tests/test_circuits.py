@@ -79,7 +79,7 @@ def _params(bp, seed):
 
 
 @pytest.mark.slow  # ~0.6 s of XLA compilation per random circuit
-@settings(max_examples=30, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@settings(max_examples=20, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(bp=blueprints(), seed=st.integers(0, 10**6))
 def test_random_circuits_equal_dense_reference(bp, seed, dense):
     params = _params(bp, seed)
@@ -90,7 +90,7 @@ def test_random_circuits_equal_dense_reference(bp, seed, dense):
 
 
 @pytest.mark.slow
-@settings(max_examples=10, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@settings(max_examples=8, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(bp=blueprints(max_qubits=4, max_steps=12), seed=st.integers(0, 10**6))
 def test_apply_circuit_forward_and_inverse_match_dense_unitary(bp, seed, dense):
     params = _params(bp, seed)
@@ -189,7 +189,7 @@ def test_scheduler_actually_fuses(dense):
 
 # --------------------------------------------------------------------------- product factors
 
-@settings(max_examples=12, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@settings(max_examples=8, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(bp=blueprints(max_qubits=4), seed=st.integers(0, 10**6))
 def test_product_factors_tensor_to_the_states(bp, seed, dense):
     steps = tuple(s for s in bp.steps if s.gate in circuits.ONE_QUBIT_GATES)

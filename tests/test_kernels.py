@@ -123,7 +123,7 @@ def test_projected_gamma_must_be_positive():
 
 # --------------------------------------------------------------------------- concentration
 
-@pytest.mark.parametrize("n, method", [(1, "auto"), (4, "auto"), (3, "statevector")])
+@pytest.mark.parametrize("n, method", [(4, "auto"), (3, "statevector")])
 def test_exponential_concentration_of_product_ry(n, method, rng):
     # Derivation: k = prod_i cos^2(D_i / 2) with D_i i.i.d. uniform on [0, 2 pi).
     # cos^2(D/2) = (1 + cos D)/2, so E = 1/2; cos^4(D/2) = (1 + 2 cos D + cos^2 D)/4, so
@@ -247,7 +247,7 @@ def _random_product_blueprint(n, rng):
     return Blueprint(n, n, tuple(steps), tuple(weights))
 
 
-@pytest.mark.parametrize("n", [1, 4, 10])
+@pytest.mark.parametrize("n", [4, 10])
 def test_closed_form_product_path_equals_statevector_path(n, dense, rng):
     bp = _random_product_blueprint(n, rng)
     assert circuits.is_product(bp)
