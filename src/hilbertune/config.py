@@ -53,7 +53,7 @@ SCHEMA = {
         "axis": ("y", str, _one_of("x", "y", "z"), "rotation axis (angle)"),
         "reps": (2, int, _POSITIVE, "repetitions (iqp)"),
         "copies": (1, int, _POSITIVE, "tensor copies (amplitude)"),
-        "bandwidth": (0.0, float, _NON_NEGATIVE,
+        "bandwidth": (0.0, float, ("in [0, 1e6]", lambda v: 0 <= v <= 1e6),
                       "initial bandwidth factor; 0 = median heuristic on the training data"),
         "bias_scale": (0.1, float, _NON_NEGATIVE, "std of the random initial biases"),
         "kind": ("fidelity", str, _one_of("fidelity", "projected"), "kernel built on the states"),
