@@ -299,6 +299,31 @@ def _batch_counts(y_train, n_classes, batch_size):
 
 # --------------------------------------------------------------------------- compiled step
 
+def balanced_batch_indices(key, members, class_sizes, counts):
+    """Row indices of a class-balanced mini-batch, ordered by class.
+
+    From class c it takes ``counts[c]`` distinct members, a uniform subset without
+    replacement: the rows with the ``counts[c]`` smallest of i.i.d. uniform draws. Class
+    order makes positional folds (``i % folds``) stratified.
+
+    Args:
+      key: PRNG key.
+      members: tuple of int arrays, one per class, each [M_c] (padded beyond the class size).
+      class_sizes: int array [C], the real size of each class (entries beyond are padding).
+      counts: tuple of Python ints, rows per class (static).
+
+    Returns:
+      int array of shape [sum(counts)].
+    """
+    keys = jax.random.split(key, len(members))
+    picks = []
+    for c, (rows, class_key, count) in enumerate(zip(members, keys, counts)):
+        draws = jax.random.uniform(class_key, rows.shape)
+        draws = jnp.where(jnp.arange(rows.shape[0]) < class_sizes[c], draws, 2.0)  # padding
+        picks.append(rows[jnp.argsort(draws)[:count]])
+    return jnp.concatenate(picks)
+
+
 def _learning_rate_schedule(config: _StaticConfig):
     lr = config.learning_rate
     if config.schedule == "constant":
@@ -363,15 +388,7 @@ def _compiled_step(blueprint: Blueprint, config: _StaticConfig):
         if config.batch_counts is None:
             X, y = X_train, y_train
         else:
-            # a uniform subset of each class without replacement: the `count` smallest of
-            # uniform draws (members are padded; padding draws 2.0 and is never picked)
-            keys = jax.random.split(key, len(members))
-            picks = []
-            for c, (m, k, count) in enumerate(zip(members, keys, config.batch_counts)):
-                draws = jax.random.uniform(k, m.shape)
-                draws = jnp.where(jnp.arange(m.shape[0]) < class_sizes[c], draws, 2.0)
-                picks.append(m[jnp.argsort(draws)[:count]])
-            index = jnp.concatenate(picks)  # class-sorted: positional folds are stratified
+            index = balanced_batch_indices(key, members, class_sizes, config.batch_counts)
             X, y = X_train[index], y_train[index]
         (_, metrics), grads = jax.value_and_grad(loss, has_aux=True)(
             trainable, fixed, reference, X, y)
@@ -696,13 +713,19 @@ def _evaluate_only(blueprint, config, params, args, validation):
     """History entry for an encoding without trainable parameters."""
     started = time.perf_counter()
     loss = training_loss_function(blueprint, config)
-    _, (objective, penalty, align, centered) = loss({}, params, {}, args[0], args[1])
-    val = None
-    if validation:
-        gram = gram_for_training(blueprint, params, args[4])
-        val = float(objectives.resolve_objective(config.objective)(
-            gram, jnp.maximum(args[5], 0), config.n_classes, config.ridge_lambda,
-            config.validation_folds, args[5] >= 0))
+    objective_fn = objectives.resolve_objective(config.objective)
+
+    def evaluate(params, X, y, X_val, y_val):
+        _, metrics = loss({}, params, {}, X, y)
+        gram = gram_for_training(blueprint, params, X_val)
+        return metrics + (objective_fn(gram, jnp.maximum(y_val, 0), config.n_classes,
+                                       config.ridge_lambda, config.validation_folds,
+                                       y_val >= 0),)
+
+    options = quick_compile_options() if config.quick_compile else None
+    objective, penalty, align, centered, val = jax.jit(evaluate, compiler_options=options)(
+        params, args[0], args[1], args[4], args[5])
+    val = float(val) if validation else None
     return {"step": 0, "objective": float(objective), "penalty": float(penalty),
             "alignment": float(align), "centered_alignment": float(centered),
             "validation_objective": val, "grad_norm": 0.0, "learning_rate": 0.0,
