@@ -14,12 +14,12 @@ from sklearn.model_selection import StratifiedKFold, cross_val_score
 from sklearn.svm import SVC
 
 from hilbertune import build_encoding, initial_params, quantum_gram
-from hilbertune import objectives as ob
+from hilbertune.kernels import gram_for_training
 from hilbertune.errors import ArtifactError, InvalidInputError, TrainingError
 from hilbertune.training import (TrainingSettings, balanced_batch_indices, encode_labels,
                                  median_heuristic_bandwidth, padded_size, quick_compile_options,
-                                 stratified_split, train_encoding, training_loss_function,
-                                 tune_svm_c, _StaticConfig)
+                                 stratified_split, train_encoding, training_gram,
+                                 training_loss_function, tune_svm_c, _StaticConfig)
 
 BLUEPRINT = build_encoding("layered", 2, n_qubits=2, layers=1)
 BASE = TrainingSettings(steps=6, learning_rate=0.05, patience=0)
@@ -180,6 +180,23 @@ def test_training_loss_gradient_matches_finite_differences():
     numeric = (float(value(shifted(1.0))) - float(value(shifted(-1.0)))) / (2 * eps)
     analytic = sum(float(jnp.sum(gradient[k] * direction[k])) for k in params)
     np.testing.assert_allclose(analytic, numeric, rtol=3e-2, atol=1e-3)
+
+
+def test_symmetric_gram_derivative_equals_plain_autodiff():
+    # reference: JAX autodiff through kernels.gram_for_training (|S S^H|^2 operand by operand)
+    blueprint = build_encoding("layered", 3, n_qubits=3, layers=2)
+    params = initial_params(blueprint, jax.random.key(1), bias_scale=0.3)
+    X = jnp.asarray(np.random.default_rng(1).uniform(-1, 1, size=(20, 3)), jnp.float32)
+    W = jnp.asarray(np.random.default_rng(2).normal(size=(20, 20)), jnp.float32)  # not symmetric
+    options = quick_compile_options()
+    ours = jax.jit(jax.value_and_grad(lambda p: jnp.sum(W * training_gram(blueprint, p, X))),
+                   compiler_options=options)(params)
+    plain = jax.jit(jax.value_and_grad(lambda p: jnp.sum(W * gram_for_training(blueprint, p, X))),
+                    compiler_options=options)(params)
+    np.testing.assert_allclose(float(ours[0]), float(plain[0]), rtol=1e-5)
+    for name in params:
+        np.testing.assert_allclose(np.asarray(ours[1][name]), np.asarray(plain[1][name]),
+                                   rtol=1e-4, atol=1e-4)
 
 
 # ----------------------------------------------------------------------------- loop behaviour

@@ -1,0 +1,122 @@
+"""Benchmark: cost of one training step against one forward Gram, and mini-batch throughput.
+
+Usage: python experiments/bench_training.py [--quick] [--repeats R]
+
+Measures, side by side in one process (interleaved, medians over R repeats, after one
+warm-up call that compiles):
+  * forward_gram_s: the fidelity Gram of N training rows (states + one complex product),
+    the jitted ``kernels.gram_for_training``;
+  * forward_training_gram_s: the same values through ``training.training_gram`` (the
+    function training differentiates; its custom derivative needs one complex product);
+  * value_and_grad_s: one training step's objective value and gradient (centered
+    alignment) with respect to weights, biases and bandwidth, full batch;
+  * optimizer_step_s: the whole compiled step of ``train_encoding`` (value, gradient,
+    global-norm clipping, Adam update), full batch, no validation split;
+  * minibatch_steps_per_s: compiled steps per second with class-balanced batches of 64.
+Default problem: 12 qubits, N = 2000, layered encoding with 2 layers (target ratio
+value_and_grad / forward <= 2.5). ``--quick``: 8 qubits, N = 256 (a smoke check).
+Prints one JSON object.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import platform
+import statistics
+import sys
+import time
+
+import numpy as np
+import jax
+import jax.numpy as jnp
+
+sys.path.insert(0, os.path.join(os.path.dirname(__file__), "..", "src"))
+
+from hilbertune import build_encoding, initial_params  # noqa: E402
+from hilbertune.kernels import gram_for_training  # noqa: E402
+from hilbertune.training import (_compiled_step, _StaticConfig, training_gram,  # noqa: E402
+                                 training_loss_function)
+
+
+def timed(function, *args):
+    start = time.perf_counter()
+    jax.block_until_ready(function(*args))
+    return time.perf_counter() - start
+
+
+def main(argv=None):
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--quick", action="store_true", help="8 qubits, N = 256")
+    parser.add_argument("--repeats", type=int, default=5)
+    parser.add_argument("--qubits", type=int, default=None)
+    parser.add_argument("--samples", type=int, default=None)
+    args = parser.parse_args(argv)
+    n_qubits = args.qubits or (8 if args.quick else 12)
+    n_samples = args.samples or (256 if args.quick else 2000)
+
+    rng = np.random.default_rng(0)  # invented data: uniform features, random balanced labels
+    X = jnp.asarray(rng.uniform(-1.0, 1.0, size=(n_samples, n_qubits)), jnp.float32)
+    y = jnp.asarray(rng.permutation(np.arange(n_samples) % 2), jnp.int32)
+    blueprint = build_encoding("layered", n_qubits, n_qubits=n_qubits, layers=2)
+    params = initial_params(blueprint, jax.random.key(0), bandwidth=1.0, bias_scale=0.1)
+    names = ("weights", "biases", "log_bandwidth")
+    config = _StaticConfig("centered_alignment", 2, 0.1, 5, 5, 0.0, names, "adam", 0.05,
+                           "constant", 0, 1.0, 1e-4, None, False, False)
+
+    forward = jax.jit(lambda p, X: gram_for_training(blueprint, p, X))
+    forward_training = jax.jit(lambda p, X: training_gram(blueprint, p, X))
+    loss = training_loss_function(blueprint, config)
+    value_and_grad = jax.jit(jax.value_and_grad(lambda p, X, y: loss(p, {}, p, X, y)[0]))
+    step, optimizer, _ = _compiled_step(blueprint, config)
+    opt_state = optimizer.init(params)
+    members = tuple(jnp.asarray(np.nonzero(np.asarray(y) == c)[0], jnp.int32) for c in (0, 1))
+    sizes = jnp.asarray([m.shape[0] for m in members], jnp.int32)
+    step_args = (params, opt_state, {}, params, X, y, members, sizes, X[:1], y[:1],
+                 jax.random.key(1))
+
+    compile_s = {"forward": timed(forward, params, X),
+                 "forward_training_gram": timed(forward_training, params, X),
+                 "value_and_grad": timed(value_and_grad, params, X, y),
+                 "optimizer_step": timed(step, *step_args)}
+    times = {"forward": [], "forward_training_gram": [], "value_and_grad": [],
+             "optimizer_step": []}
+    for _ in range(args.repeats):
+        times["forward"].append(timed(forward, params, X))
+        times["forward_training_gram"].append(timed(forward_training, params, X))
+        times["value_and_grad"].append(timed(value_and_grad, params, X, y))
+        times["optimizer_step"].append(timed(step, *step_args))
+    medians = {k: statistics.median(v) for k, v in times.items()}
+
+    batch_config = config._replace(batch_counts=(32, 32))
+    batch_step, _, _ = _compiled_step(blueprint, batch_config)
+    compile_s["minibatch_step"] = timed(batch_step, *step_args)
+    batch_times = []
+    for t in range(max(20, 4 * args.repeats)):
+        batch_args = step_args[:-1] + (jax.random.key(100 + t),)
+        batch_times.append(timed(batch_step, *batch_args))
+
+    report = {
+        "n_qubits": n_qubits, "n_samples": n_samples, "family": "layered", "layers": 2,
+        "objective": "centered_alignment", "repeats": args.repeats,
+        "forward_gram_s": medians["forward"],
+        "forward_training_gram_s": medians["forward_training_gram"],
+        "value_and_grad_s": medians["value_and_grad"],
+        "optimizer_step_s": medians["optimizer_step"],
+        "ratio_value_and_grad_to_forward": medians["value_and_grad"] / medians["forward"],
+        "ratio_optimizer_step_to_forward": medians["optimizer_step"] / medians["forward"],
+        "target_ratio": 2.5,
+        "minibatch_size": 64,
+        "minibatch_step_s": statistics.median(batch_times),
+        "minibatch_steps_per_s": 1.0 / statistics.median(batch_times),
+        "compile_s": compile_s,
+        "all_times_s": times,
+        "platform": platform.platform(), "cpu_count": os.cpu_count(),
+        "jax": jax.__version__, "backend": jax.default_backend(),
+    }
+    print(json.dumps(report, indent=2))
+
+
+if __name__ == "__main__":
+    main()
