@@ -15,7 +15,8 @@ from sklearn.svm import SVC
 
 from hilbertune import build_encoding, initial_params, quantum_gram
 from hilbertune.kernels import gram_for_training
-from hilbertune.errors import ArtifactError, InvalidInputError, TrainingError
+from hilbertune.errors import (ArtifactError, InvalidInputError, ResourceLimitError,
+                               TrainingError)
 from hilbertune.training import (TrainingSettings, balanced_batch_indices, encode_labels,
                                  median_heuristic_bandwidth, padded_size, quick_compile_options,
                                  stratified_split, train_encoding, training_gram,
@@ -100,6 +101,12 @@ def test_fewer_samples_than_folds_is_refused():
     settings = BASE._replace(objective="ridge_kfold", folds=10, validation_fraction=0.0)
     with pytest.raises(InvalidInputError, match="folds"):
         train_encoding(BLUEPRINT, X, y, settings, seed=0)
+
+
+def test_step_that_would_not_fit_in_memory_is_refused():
+    X, y = blobs()
+    with pytest.raises(ResourceLimitError, match="batch_size"):
+        train_encoding(BLUEPRINT, X, y, BASE, seed=0, memory_budget="20kB")
 
 
 def test_validation_split_needs_two_samples_per_class():

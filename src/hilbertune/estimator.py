@@ -106,14 +106,14 @@ class EncodingClassifier(ClassifierMixin, BaseEstimator):
         options = dict(self.encoding_options or {})
         family = self.family
         if family in _FIXED_WIDTH:
-            if self.n_qubits is not None and family in ("angle", "iqp", "basis") and \
-                    self.n_qubits != n_features:
-                raise InvalidInputError(
-                    f"family {family!r} uses one qubit per feature ({n_features}), but "
-                    f"n_qubits={self.n_qubits}; leave n_qubits=None or use family='layered'")
             if family == "iqp":
                 options.setdefault("reps", self.layers)
-            return build_encoding(family, n_features, **options)
+            blueprint = build_encoding(family, n_features, **options)
+            if self.n_qubits is not None and blueprint.n_qubits != self.n_qubits:
+                raise InvalidInputError(
+                    f"family {family!r} needs {blueprint.n_qubits} qubits for {n_features} "
+                    f"features, but n_qubits={self.n_qubits}; leave n_qubits=None")
+            return blueprint
         if family == "layered":
             n_qubits = min(n_features, 8) if self.n_qubits is None else self.n_qubits
             options.setdefault("n_qubits", n_qubits)

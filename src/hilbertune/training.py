@@ -32,10 +32,10 @@ import jax
 import jax.numpy as jnp
 import optax
 
-from hilbertune.circuits import (PARAM_NAMES, Blueprint, encode_states, initial_params,
-                                 is_product, validate_features)
-from hilbertune.errors import ArtifactError, InvalidInputError, TrainingError
-from hilbertune.kernels import gram_for_training
+from hilbertune.circuits import (PARAM_NAMES, Blueprint, compile_blueprint, encode_states,
+                                 initial_params, is_product, validate_features)
+from hilbertune.errors import ArtifactError, InvalidInputError, ResourceLimitError, TrainingError
+from hilbertune.kernels import gram_for_training, resolve_memory_budget
 from hilbertune import objectives
 
 OPTIMIZERS = ("adam", "sgd", "rmsprop", "adamw")
@@ -61,7 +61,7 @@ class TrainingSettings(NamedTuple):
     ridge_lambda: float = 0.1  # ridge of the "ridge_loo" / "ridge_kfold" objectives
     folds: int = 5  # folds of "ridge_kfold"
     freeze: tuple = ()  # parameter names left alone, in addition to blueprint.frozen
-    checkpoint_every: int = 25  # steps between checkpoints (with checkpoint_dir); 0 = at the end only
+    checkpoint_every: int = 25  # steps between checkpoints (with checkpoint_dir); 0 = at the end
     bandwidth: float | None = None  # initial bandwidth c; None = median heuristic
     bias_scale: float = 0.0  # initial biases ~ N(0, bias_scale^2)
     weight_decay: float = 1e-4  # decoupled weight decay of "adamw"
@@ -297,6 +297,22 @@ def _batch_counts(y_train, n_classes, batch_size):
         return None
     per_class = max(1, batch_size // n_classes)
     return tuple(int(min(n, per_class)) for n in counts)
+
+
+def training_memory_bytes(blueprint: Blueprint, batch_rows: int, validation_rows: int) -> int:
+    """Rough peak memory of one training step, in bytes.
+
+    Reverse mode keeps about two statevector copies per compiled circuit stage for the
+    backward pass (complex64: 8 bytes per amplitude), plus a few Gram-sized matrices
+    (the complex overlap kept for the derivative and real temporaries). Product encodings
+    never form statevectors.
+    """
+    grams = 24 * (batch_rows**2 + validation_rows**2)
+    if is_product(blueprint) or blueprint.state_kind != "gates":
+        return grams + 64 * (batch_rows + validation_rows) * blueprint.n_qubits
+    stages = len(compile_blueprint(blueprint).stages)
+    amplitudes = (batch_rows * (2 * stages + 4) + 4 * validation_rows) * 2**blueprint.n_qubits
+    return grams + 8 * amplitudes
 
 
 # --------------------------------------------------------------------------- compiled step
@@ -570,7 +586,7 @@ def _progress_bar(enabled, total):
 def train_encoding(blueprint: Blueprint, X, y, settings: TrainingSettings = TrainingSettings(),
                    *, seed: int, params: dict | None = None, checkpoint_dir: str | None = None,
                    progress: bool = False, resume: bool = True,
-                   pause_after: int | None = None) -> TrainingResult:
+                   pause_after: int | None = None, memory_budget=None) -> TrainingResult:
     """Learn the encoding's weights, biases and bandwidth on labelled data.
 
     Args:
@@ -586,6 +602,8 @@ def train_encoding(blueprint: Blueprint, X, y, settings: TrainingSettings = Trai
       resume: continue from a matching checkpoint in ``checkpoint_dir`` (exact resume).
       pause_after: stop after this many steps in this call (writing a checkpoint); calling
         again with the same arguments continues.
+      memory_budget: bytes or a string such as "4GiB" (None: half the memory, at most 8 GiB);
+        a step whose estimate (``training_memory_bytes``) exceeds it is refused up front.
 
     Returns:
       ``TrainingResult``. ``history[t]`` describes the parameters after t updates: ``step``,
@@ -616,6 +634,14 @@ def train_encoding(blueprint: Blueprint, X, y, settings: TrainingSettings = Trai
                                 "add samples")
     validation = val_idx.shape[0] > 0
     validation_folds = max(2, min(settings.folds, val_idx.shape[0]))
+    budget = resolve_memory_budget(memory_budget)
+    need = training_memory_bytes(blueprint, padded_size(batch_total),
+                                 padded_size(val_idx.shape[0]) if validation else 0)
+    if need > budget:
+        raise ResourceLimitError(
+            f"a training step on {batch_total} samples ({blueprint.n_qubits} qubits) needs "
+            f"about {need / 2**30:.2f} GiB but the memory budget is {budget / 2**30:.2f} GiB; "
+            "set batch_size (e.g. 64), use fewer qubits or raise memory_budget")
 
     root = jax.random.key(int(seed))
     init_key, batch_key = jax.random.split(root)
