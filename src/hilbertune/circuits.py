@@ -370,6 +370,8 @@ def _apply_stage(blueprint, program, k, states, angles, inverse=False):
                                                            inverse), q, n)
     if stage.kind == "diagonal":
         rotating, signs, fixed = program.stage_data[k]
+        if not rotating:  # CZ gates only: a fixed +-1 diagonal, no phases to exponentiate
+            return states * jnp.asarray(fixed, states.dtype)
         sign = -1.0 if inverse else 1.0
         theta = sign * angles[:, list(rotating)] if rotating else jnp.zeros((states.shape[0], 0),
                                                                             angles.dtype)
