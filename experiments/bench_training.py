@@ -106,6 +106,10 @@ def main(argv=None):
         "optimizer_step_s": medians["optimizer_step"],
         "ratio_value_and_grad_to_forward": medians["value_and_grad"] / medians["forward"],
         "ratio_optimizer_step_to_forward": medians["optimizer_step"] / medians["forward"],
+        # each repeat times forward and value_and_grad back to back: the median of these
+        # per-repeat ratios is less sensitive to load from other processes
+        "ratio_value_and_grad_to_forward_pairwise_median": statistics.median(
+            g / f for g, f in zip(times["value_and_grad"], times["forward"])),
         "target_ratio": 2.5,
         "minibatch_size": 64,
         "minibatch_step_s": statistics.median(batch_times),

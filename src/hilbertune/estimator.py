@@ -20,9 +20,9 @@ from sklearn.utils import check_random_state
 from sklearn.utils.multiclass import check_classification_targets
 from sklearn.utils.validation import validate_data
 
+from hilbertune.circuits import encode_states
 from hilbertune.encodings import build_encoding
 from hilbertune.errors import InvalidInputError, NotFittedError
-from hilbertune.circuits import encode_states
 from hilbertune.kernels import quantum_gram
 from hilbertune.training import (TrainingSettings, padded_size, quick_compile,
                                  quick_compile_options, train_encoding, tune_svm_c)
@@ -77,7 +77,12 @@ class EncodingClassifier(ClassifierMixin, BaseEstimator):
       random_state: int, numpy RandomState or None; drives the split, batches and CV folds.
 
     Learned attributes: ``classes_``, ``n_features_in_``, ``blueprint_``, ``params_``,
-    ``initial_params_``, ``history_``, ``stop_reason_``, ``C_``, ``svm_``, ``seed_``.
+    ``initial_params_``, ``history_``, ``stop_reason_``, ``C_``, ``svm_``, ``seed_`` and
+    ``X_fit_`` (the training rows, needed for the Gram of new rows against them).
+
+    Small problems (padded rows * 2**n_qubits <= 2**16) compute states with XLA's quick
+    compilation options and the Gram with numpy; larger ones use ``quantum_gram`` (memory
+    budget, blocked products).
     """
 
     def __init__(self, *, family="layered", n_qubits=None, layers=2, encoding_options=None,
