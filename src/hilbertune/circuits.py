@@ -117,22 +117,31 @@ def resource_counts(blueprint: Blueprint) -> dict:
         return {"qubits": blueprint.n_qubits, "depth": None, "one_qubit_gates": None,
                 "two_qubit_gates": None, "trainable_parameters": 0,
                 "note": "amplitude encoding: exact state preparation, not decomposed into gates"}
-    front = [0] * blueprint.n_qubits
-    one = two = 0
-    for step in blueprint.steps:
-        layer = max(front[q] for q in step.qubits) + 1
-        for q in step.qubits:
-            front[q] = layer
-        if len(step.qubits) == 1:
-            one += 1
-        else:
-            two += 1
     frozen = set(blueprint.frozen)
     trainable = sum(blueprint.n_slots for name in ("weights", "biases") if name not in frozen)
     trainable += 0 if "log_bandwidth" in frozen else 1
-    return {"qubits": blueprint.n_qubits, "depth": max(front, default=0),
-            "one_qubit_gates": one, "two_qubit_gates": two,
-            "trainable_parameters": trainable}
+    counts = gate_counts([step.qubits for step in blueprint.steps], blueprint.n_qubits)
+    return {**counts, "trainable_parameters": trainable}
+
+
+def gate_counts(gate_qubits, n_qubits: int) -> dict:
+    """Qubits, depth (as-soon-as-possible layering) and 1-/2-qubit gate counts of a gate list.
+
+    Args:
+      gate_qubits: sequence of qubit tuples, one per gate, in circuit order.
+    """
+    front = [0] * n_qubits
+    one = two = 0
+    for qubits in gate_qubits:
+        layer = max(front[q] for q in qubits) + 1
+        for q in qubits:
+            front[q] = layer
+        if len(qubits) == 1:
+            one += 1
+        else:
+            two += 1
+    return {"qubits": n_qubits, "depth": max(front, default=0), "one_qubit_gates": one,
+            "two_qubit_gates": two}
 
 
 def state_memory_bytes(n_samples: int, n_qubits: int, dtype=jnp.complex64) -> int:

@@ -26,7 +26,7 @@ from typing import NamedTuple
 
 import numpy as np
 
-from hilbertune.circuits import Blueprint, resource_counts, validate_blueprint
+from hilbertune.circuits import Blueprint, gate_counts, resource_counts, validate_blueprint
 from hilbertune.errors import InvalidInputError
 
 BANDWIDTH_NAME = "bandwidth"
@@ -236,18 +236,7 @@ def kernel_circuit_to_qasm3(blueprint: Blueprint, params: dict) -> str:
 
 
 def _count(instructions: list, n_qubits: int) -> dict:
-    front = [0] * n_qubits
-    one = two = 0
-    for instruction in instructions:
-        layer = max(front[q] for q in instruction.qubits) + 1
-        for q in instruction.qubits:
-            front[q] = layer
-        if len(instruction.qubits) == 1:
-            one += 1
-        else:
-            two += 1
-    return {"qubits": n_qubits, "depth": max(front, default=0), "one_qubit_gates": one,
-            "two_qubit_gates": two}
+    return gate_counts([instruction.qubits for instruction in instructions], n_qubits)
 
 
 def export_resource_counts(blueprint: Blueprint) -> dict:
