@@ -4,10 +4,12 @@ Usage: python experiments/bench_training.py [--quick] [--repeats R]
 
 Measures, side by side in one process (interleaved, medians over R repeats, after one
 warm-up call that compiles):
-  * forward_gram_s: the fidelity Gram of N training rows (states + one complex product),
-    the jitted ``kernels.gram_for_training``;
+  * forward_gram_s: the fidelity Gram of N training rows as the tool computes it for an
+    SVM, ``kernels.quantum_gram`` (jitted states + BLAS herk, half a general product);
+  * forward_gram_xla_s: the same values from the jitted ``kernels.gram_for_training``
+    (states + one XLA complex product);
   * forward_training_gram_s: the same values through ``training.training_gram`` (the
-    function training differentiates; its custom derivative needs one complex product);
+    function training differentiates: BLAS herk forward, one BLAS gemm backward);
   * value_and_grad_s: one training step's objective value and gradient (centered
     alignment) with respect to weights, biases and bandwidth, full batch;
   * optimizer_step_s: the whole compiled step of ``train_encoding`` (value, gradient,
@@ -35,7 +37,7 @@ import jax.numpy as jnp
 sys.path.insert(0, os.path.join(os.path.dirname(__file__), "..", "src"))
 
 from hilbertune import build_encoding, initial_params  # noqa: E402
-from hilbertune.kernels import gram_for_training  # noqa: E402
+from hilbertune.kernels import gram_for_training, quantum_gram  # noqa: E402
 from hilbertune.training import (_compiled_step, _StaticConfig, training_gram,  # noqa: E402
                                  training_loss_function)
 
@@ -65,7 +67,8 @@ def main(argv=None):
     config = _StaticConfig("centered_alignment", 2, 0.1, 5, 5, 0.0, names, "adam", 0.05,
                            "constant", 0, 1.0, 1e-4, None, False, False)
 
-    forward = jax.jit(lambda p, X: gram_for_training(blueprint, p, X))
+    forward = lambda p, X: quantum_gram(blueprint, p, X)  # noqa: E731
+    forward_xla = jax.jit(lambda p, X: gram_for_training(blueprint, p, X))
     forward_training = jax.jit(lambda p, X: training_gram(blueprint, p, X))
     loss = training_loss_function(blueprint, config)
     value_and_grad = jax.jit(jax.value_and_grad(lambda p, X, y: loss(p, {}, p, X, y)[0]))
@@ -77,13 +80,15 @@ def main(argv=None):
                  jax.random.key(1))
 
     compile_s = {"forward": timed(forward, params, X),
+                 "forward_xla": timed(forward_xla, params, X),
                  "forward_training_gram": timed(forward_training, params, X),
                  "value_and_grad": timed(value_and_grad, params, X, y),
                  "optimizer_step": timed(step, *step_args)}
-    times = {"forward": [], "forward_training_gram": [], "value_and_grad": [],
-             "optimizer_step": []}
+    times = {"forward": [], "forward_xla": [], "forward_training_gram": [],
+             "value_and_grad": [], "optimizer_step": []}
     for _ in range(args.repeats):
         times["forward"].append(timed(forward, params, X))
+        times["forward_xla"].append(timed(forward_xla, params, X))
         times["forward_training_gram"].append(timed(forward_training, params, X))
         times["value_and_grad"].append(timed(value_and_grad, params, X, y))
         times["optimizer_step"].append(timed(step, *step_args))
@@ -101,11 +106,13 @@ def main(argv=None):
         "n_qubits": n_qubits, "n_samples": n_samples, "family": "layered", "layers": 2,
         "objective": "centered_alignment", "repeats": args.repeats,
         "forward_gram_s": medians["forward"],
+        "forward_gram_xla_s": medians["forward_xla"],
         "forward_training_gram_s": medians["forward_training_gram"],
         "value_and_grad_s": medians["value_and_grad"],
         "optimizer_step_s": medians["optimizer_step"],
         "ratio_value_and_grad_to_forward": medians["value_and_grad"] / medians["forward"],
         "ratio_optimizer_step_to_forward": medians["optimizer_step"] / medians["forward"],
+        "ratio_value_and_grad_to_forward_xla": medians["value_and_grad"] / medians["forward_xla"],
         # each repeat times forward and value_and_grad back to back: the median of these
         # per-repeat ratios is less sensitive to load from other processes
         "ratio_value_and_grad_to_forward_pairwise_median": statistics.median(
