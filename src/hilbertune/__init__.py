@@ -25,6 +25,12 @@ from hilbertune.hardware import (clip_eigenvalues, compute_uncompute_depolarizin
                                  shot_sampled_gram, shot_variance)
 from hilbertune.kernels import (FrozenKernel, fidelity_gram, interference_zero_probability,
                                 pauli_expectations, product_gram, projected_gram, quantum_gram)
+from hilbertune.estimator import EncodingClassifier
+from hilbertune.objectives import (OBJECTIVES, centered_alignment, kernel_alignment,
+                                   objective_loss, ridge_kfold_loss, ridge_loo_loss,
+                                   target_matrix)
+from hilbertune.training import (SvmChoice, TrainingResult, TrainingSettings, train_encoding,
+                                 tune_svm_c)
 from hilbertune.landmarks import (NystroemMap, NystroemSVM, fit_nystroem, nystroem_features,
                                   nystroem_gram, select_landmarks)
 from hilbertune.qasm import encoding_to_qasm3, kernel_circuit_to_qasm3
@@ -54,6 +60,10 @@ __all__ = [
     "depolarize_kernel", "repair_gram", "restore_unit_diagonal", "shift_spectrum",
     "shot_budget", "shot_sampled_gram", "shot_variance",
     "encoding_to_qasm3", "kernel_circuit_to_qasm3",
+    # learning
+    "EncodingClassifier", "OBJECTIVES", "centered_alignment", "kernel_alignment",
+    "objective_loss", "ridge_kfold_loss", "ridge_loo_loss", "target_matrix",
+    "SvmChoice", "TrainingResult", "TrainingSettings", "train_encoding", "tune_svm_c",
     # scale
     "NystroemMap", "NystroemSVM", "fit_nystroem", "nystroem_features", "nystroem_gram",
     "select_landmarks",
