@@ -476,7 +476,7 @@ def check_dtype(dtype):
 
 
 def encode_states(blueprint: Blueprint, params: dict, X, *, dtype=jnp.complex64,
-                  chunk_size: int | None = None):
+                  chunk_size: int | None = None, memory_budget=None):
     """Statevectors of the encoding for every row of ``X``.
 
     Pure and differentiable in ``params`` (inputs are validated only when they are concrete
@@ -488,6 +488,8 @@ def encode_states(blueprint: Blueprint, params: dict, X, *, dtype=jnp.complex64,
       X: float array of shape [N, F].
       dtype: complex64 (default) or complex128.
       chunk_size: process this many samples at a time (bounds intermediate memory).
+      memory_budget: bytes or a string such as "4GiB" (None: the default budget); concrete
+        inputs whose states would not fit are refused before anything is allocated.
 
     Returns:
       complex array of shape [N, 2**n].
@@ -495,6 +497,9 @@ def encode_states(blueprint: Blueprint, params: dict, X, *, dtype=jnp.complex64,
     dtype = check_dtype(dtype)
     if not isinstance(X, jax.core.Tracer):
         X = validate_features(blueprint, X)
+        from hilbertune.kernels import resolve_memory_budget
+
+        require_state_memory(X.shape[0], blueprint, resolve_memory_budget(memory_budget), dtype)
     if chunk_size is not None and chunk_size < 1:
         raise InvalidInputError(f"chunk_size must be a positive integer, got {chunk_size}")
     return _encode_jit(blueprint, params, jnp.asarray(X, _real_dtype(dtype)), dtype, chunk_size)

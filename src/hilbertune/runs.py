@@ -91,8 +91,16 @@ def training_settings(config: dict):
         bias_scale=config["encoding"]["bias_scale"])
 
 
-def kernel_pair(config: dict, blueprint, params, X_train, X_test):
+def kernel_pair(config: dict, blueprint, params, X_train, X_test, *,
+                progress: bool = False):
     """(train Gram, test-vs-train Gram) as float64 numpy arrays."""
+    if progress:
+        from rich.console import Console
+
+        with Console(stderr=True).status(f"computing {config['encoding']['kind']} Grams "
+                                         f"({len(X_train)} x {len(X_train)} and "
+                                         f"{len(X_test)} x {len(X_train)})"):
+            return kernel_pair(config, blueprint, params, X_train, X_test)
     from hilbertune.kernels import projected_gram, quantum_gram
 
     enc, compute = config["encoding"], config["compute"]
@@ -275,8 +283,9 @@ def _execute_fit(config: dict, out_dir: Path, *, overwrite: bool, progress: bool
 
     # ---- freeze and evaluate
     k_kind = enc["kind"]
-    k0_train, k0_test = kernel_pair(config, blueprint, params0, X_train, X_test)
-    k_train, k_test = kernel_pair(config, blueprint, params, X_train, X_test)
+    k0_train, k0_test = kernel_pair(config, blueprint, params0, X_train, X_test,
+                                    progress=progress)
+    k_train, k_test = kernel_pair(config, blueprint, params, X_train, X_test, progress=progress)
     model, C, tuned = _fit_svm(config, k_train, y_train, seed)
     model0, _, _ = _fit_svm(config, k0_train, y_train, seed)
     train_acc, test_acc = _accuracy(model, k_train, y_train), _accuracy(model, k_test, y_test)
