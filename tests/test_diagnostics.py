@@ -346,3 +346,12 @@ def test_diagnose_kernel_is_json_ready():
     assert report["geometric_difference"] >= 1.0
     assert report["effective_dimension"] == pytest.approx(effective_dimension(K))
     json.dumps(report)
+
+
+def test_geometric_difference_survives_the_degenerate_pair_that_broke_lapack():
+    # regression: scipy.linalg.eigh(Kq, Kc, subset_by_index=...) raised LinAlgError
+    # ("eigenvectors failed to converge") for this Kq = Kc pair (found by hypothesis in CI);
+    # g(K, K) = 1 (Huang et al., Nat. Commun. 12, 2631 (2021))
+    X = np.random.default_rng(508).normal(size=(10, 2))
+    K = rbf_kernel(X, gamma=4.375)
+    assert geometric_difference(K, K) == pytest.approx(1.0, abs=1e-9)

@@ -180,8 +180,14 @@ def geometric_difference(K_quantum, K_classical, *, reg: float = 1e-3) -> float:
             raise InvalidInputError(f"{name} has non-positive trace; it is not a kernel Gram")
     Kq = _psd_part(Kq * (n / np.trace(Kq))) + reg * np.eye(n)
     Kc = _psd_part(Kc * (n / np.trace(Kc))) + reg * np.eye(n)
-    largest = scipy.linalg.eigh(Kq, Kc, eigvals_only=True, subset_by_index=[n - 1, n - 1])
-    return float(math.sqrt(max(float(largest[0]), 0.0)))
+    # ||sqrt(Kq) Kc^-1 sqrt(Kq)||_2 is the largest generalized eigenvalue of (Kq, Kc); whiten
+    # with the Cholesky factor Kc = L L^T and take the largest eigenvalue of L^-1 Kq L^-T.
+    # (LAPACK's subset generalized solver failed to converge on degenerate pairs, Kq = Kc.)
+    lower = scipy.linalg.cholesky(Kc, lower=True)
+    half = scipy.linalg.solve_triangular(lower, Kq, lower=True)
+    whitened = scipy.linalg.solve_triangular(lower, half.T, lower=True)
+    largest = np.linalg.eigvalsh(0.5 * (whitened + whitened.T))[-1]
+    return float(math.sqrt(max(float(largest), 0.0)))
 
 
 # --------------------------------------------------------------------------- alignment
