@@ -529,3 +529,15 @@ def test_other_bad_inputs_rejected():
         hw.shot_budget(K, K, np.zeros(3), y, seed=0)
     with pytest.raises(InvalidInputError, match="K_test must be"):
         hw.shot_budget(K, np.full((2, 4), 0.5), y, y[:2], seed=0)
+
+
+def test_density_matrix_memory_is_checked_before_allocating():
+    # 20000 samples x 4^8 x 16 bytes ~ 19.5 GiB: refused with the estimate, nothing allocated
+    from hilbertune import build_encoding, initial_params
+    from hilbertune.errors import ResourceLimitError
+    from hilbertune.hardware import density_matrix_kernel
+
+    blueprint = build_encoding("iqp", 8)
+    X = np.zeros((20000, 8))
+    with pytest.raises(ResourceLimitError, match="GiB"):
+        density_matrix_kernel(blueprint, initial_params(blueprint), X, X[:2])

@@ -534,6 +534,15 @@ def density_matrix_kernel(blueprint: Blueprint, params: dict, X_a, X_b=None, *,
         return _depolarize(rho, everything if channel == "global" else step.qubits, error, n)
 
     # first half U(x_a) once per row sample
+    from hilbertune.kernels import resolve_memory_budget
+
+    need = X_a.shape[0] * 16 * 4**n + pairs_per_chunk * 16 * 4**n
+    budget = resolve_memory_budget(None)
+    if need > budget:
+        raise ResourceLimitError(
+            f"density matrices of {X_a.shape[0]} samples on {n} qubits need "
+            f"{need / 2**30:.2f} GiB but the memory budget is {budget / 2**30:.2f} GiB; pass "
+            "fewer samples (X_a) or use depolarize_kernel, the per-entry formula")
     rho_a = np.zeros((X_a.shape[0], 2**n, 2**n), dtype=np.complex128)
     rho_a[:, 0, 0] = 1.0
     for k, step in enumerate(blueprint.steps):
