@@ -162,8 +162,8 @@ def _remove_stale_temporaries(out_dir: Path) -> None:
     for path in out_dir.glob(".*.tmp"):  # artifacts.write_bytes: .<name>.<random>.tmp
         if any(path.name.startswith(f".{name}.") for name in names) and path.is_file():
             path.unlink()
-    for path in (out_dir / "checkpoints").glob(".tmp-*"):  # training's checkpoint writes
-        if path.name.endswith(("checkpoint.npz", "checkpoint.json")) and path.is_file():
+    for path in (out_dir / "checkpoints").glob(".checkpoint.*.tmp"):  # checkpoint writes
+        if path.is_file():
             path.unlink()
 
 

@@ -23,7 +23,6 @@ import hashlib
 import json
 import math
 import os
-import tempfile
 import time
 from typing import NamedTuple
 
@@ -32,6 +31,7 @@ import jax
 import jax.numpy as jnp
 import optax
 
+from hilbertune import artifacts
 from hilbertune.circuits import (PARAM_NAMES, Blueprint, compile_blueprint, encode_states,
                                  initial_params, is_product, validate_features)
 from hilbertune.errors import ArtifactError, InvalidInputError, ResourceLimitError, TrainingError
@@ -544,21 +544,6 @@ def _fingerprint(blueprint, settings, seed, X, y_int, classes, start_params):
     return digest.hexdigest()
 
 
-def _atomic_write(path: str, write) -> None:
-    directory = os.path.dirname(path) or "."
-    handle, tmp = tempfile.mkstemp(dir=directory, prefix=".tmp-", suffix=os.path.basename(path))
-    try:
-        with os.fdopen(handle, "wb") as stream:
-            write(stream)
-            stream.flush()
-            os.fsync(stream.fileno())
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
-
-
 def _save_checkpoint(directory, *, fingerprint, seed, objective, state, opt_state) -> None:
     os.makedirs(directory, exist_ok=True)
     arrays = {}
@@ -574,15 +559,15 @@ def _save_checkpoint(directory, *, fingerprint, seed, objective, state, opt_stat
     arrays["meta_json"] = np.frombuffer(json.dumps(meta).encode(), dtype=np.uint8)
     arrays["batch_key_data"] = np.asarray(jax.random.key_data(state["batch_key"]))
     npz_path = os.path.join(directory, CHECKPOINT_NPZ)
-    _atomic_write(npz_path, lambda stream: np.savez(stream, **arrays))
+    artifacts.write_npz(npz_path, arrays)
     with open(npz_path, "rb") as stream:
         sha = hashlib.sha256(stream.read()).hexdigest()
     summary = {"format": CHECKPOINT_FORMAT, "step": state["next_step"], "seed": int(seed),
                "objective": objective, "best_step": state["best_step"],
                "stop_reason": state["stop_reason"], "fingerprint": fingerprint,
                "npz_sha256": sha}
-    _atomic_write(os.path.join(directory, CHECKPOINT_JSON),
-                  lambda stream: stream.write(json.dumps(summary, indent=2).encode()))
+    artifacts.write_bytes(os.path.join(directory, CHECKPOINT_JSON),
+                          json.dumps(summary, indent=2).encode())
 
 
 def _load_checkpoint(directory, fingerprint, opt_template):
