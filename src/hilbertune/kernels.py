@@ -82,9 +82,10 @@ def _numpy_gram(states_a: np.ndarray, states_b, block_rows: int | None) -> np.nd
         n = states_a.shape[0]
         herk = blas.zherk if complex128 else blas.cherk
         if block_rows is None or block_rows >= n:
+            # herk writes only the upper triangle of a zero-initialized output, so the
+            # strict lower triangle of |.|^2 is 0 and one transposed add mirrors it
             upper = _abs2(herk(1.0, states_a.T, trans=2, lower=0))
-            gram = np.triu(upper, 1)
-            gram += gram.T
+            gram = upper + upper.T
         else:  # memory-bounded: row blocks of the general product
             gram = np.empty((n, n), upper_dtype(states_a))
             for i in range(0, n, block_rows):
