@@ -372,19 +372,32 @@ def _host_overlap(states):
     """O = S S^H on the host with BLAS ``herk`` (half the work of a general product).
 
     ``herk`` with ``trans=2`` on the Fortran view [D, N] of the C-ordered states gives the
-    upper triangle of ``conj(S S^H)``; the rest follows from O being Hermitian.
+    upper triangle U of ``conj(S S^H)`` in a zero-initialized output; O is Hermitian, so
+    O = conj(U) + U^T with the (real) diagonal counted once.
     """
     from scipy.linalg import blas
 
     states = np.ascontiguousarray(states)
     herk = blas.zherk if states.dtype == np.complex128 else blas.cherk
-    upper = np.triu(np.conj(herk(1.0, states.T, trans=2, lower=0)))
-    return (upper + np.conj(np.triu(upper, 1)).T).astype(states.dtype)
+    upper = herk(1.0, states.T, trans=2, lower=0)
+    overlap = np.empty(upper.shape, upper.dtype)  # C order, as XLA expects it back
+    np.conjugate(upper, out=overlap)
+    overlap += upper.T
+    np.fill_diagonal(overlap, upper.diagonal().real)
+    return overlap
 
 
 def _host_product(weights, states):
-    """W @ S on the host (BLAS ``gemm``)."""
-    return np.asarray(np.asarray(weights) @ np.asarray(states), dtype=states.dtype)
+    """W @ S on the host with scipy's BLAS ``gemm``, no copies.
+
+    The C-ordered operands are the Fortran-ordered transposes, so ``gemm(S^T, W^T)`` gives
+    ``(W S)^T`` in Fortran order, which is ``W S`` in C order.
+    """
+    from scipy.linalg import blas
+
+    weights, states = np.asarray(weights), np.ascontiguousarray(states)
+    gemm = blas.zgemm if states.dtype == np.complex128 else blas.cgemm
+    return gemm(1.0, states.T, np.ascontiguousarray(weights).T).T
 
 
 def _overlap_on_host(states):
