@@ -275,6 +275,27 @@ def test_closed_form_scales_to_hundreds_of_qubits(rng):
     np.testing.assert_allclose(gram, want, rtol=2e-4, atol=1e-7)
 
 
+@pytest.mark.parametrize("axis", ["x", "y", "z"])
+def test_tiled_product_kernel_across_tile_and_pass_boundaries(axis, rng, monkeypatch):
+    # Small tiles so that 150 x 131 samples need a 3 x 3 grid with padded edges, and 23
+    # qubits so that the 20-qubit passes need padding. Any single-axis angle encoding gives
+    # prod_i cos^2(c (x_i - x'_i) / 2) (common practice closed form; float64 numpy).
+    monkeypatch.setattr(kernels, "_TILE_EDGE", 64)
+    n, c = 23, 0.7
+    bp = encodings.single_axis_rotations(n, axis=axis)
+    params = circuits.initial_params(bp, bandwidth=c)
+    X, Y = rng.uniform(-2, 2, size=(150, n)), rng.uniform(-2, 2, size=(131, n))
+
+    def closed_form(A, B):
+        return np.prod(np.cos(c * (A[:, None] - B[None]) / 2) ** 2, axis=-1)
+
+    train = kernels.quantum_gram(bp, params, X)
+    np.testing.assert_allclose(train, closed_form(X, X), atol=2e-6)
+    assert np.array_equal(train, train.T) and np.all(np.diag(train) == 1.0)
+    np.testing.assert_allclose(kernels.quantum_gram(bp, params, X, Y), closed_form(X, Y),
+                               atol=2e-6)
+
+
 def test_product_method_refused_for_entangling_encoding():
     bp = _layered(2)
     with pytest.raises(InvalidInputError, match="entangling"):

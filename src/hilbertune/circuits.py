@@ -521,18 +521,37 @@ def product_factors(blueprint: Blueprint, params: dict, X, *, dtype=jnp.complex6
 
 @functools.partial(jax.jit, static_argnames=("blueprint", "dtype"))
 def _factors_jit(blueprint, params, X, dtype):
-    # one compiled program instead of one dispatch per qubit (5000 x 200 angle encoding:
-    # ~1 s op by op, milliseconds compiled)
+    # Stages with the same gate sequence (e.g. one RY per qubit) are evaluated together on
+    # a [batch, stages] angle array: a handful of vectorized ops instead of one small op per
+    # qubit (5000 x 200 angle encoding: 145 ms -> see experiments/bench_gram.py).
     program = compile_blueprint(blueprint)
     angles = step_angles(program, params, X, _real_dtype(dtype))
-    batch = angles.shape[0]
-    zero = jnp.broadcast_to(jnp.asarray([1.0, 0.0], dtype), (batch, 2))
-    columns = [zero] * blueprint.n_qubits
-    for stage in program.stages:  # all local; one stage per qubit after fusion
-        (q,) = stage.qubits
-        columns[q] = jnp.einsum("bac,bc->ba", _local_matrix(blueprint, stage, angles, dtype),
-                                columns[q])
-    return jnp.stack(columns, axis=1)
+    batch, n = angles.shape[0], blueprint.n_qubits
+    columns = jnp.zeros((batch, n, 2), dtype).at[:, :, 0].set(1.0)
+    qubits = [next(iter(stage.qubits)) for stage in program.stages]
+    if len(set(qubits)) < len(qubits):  # several stages on one qubit: apply in order
+        for stage in program.stages:
+            (q,) = stage.qubits
+            columns = columns.at[:, q].set(jnp.einsum(
+                "bac,bc->ba", _local_matrix(blueprint, stage, angles, dtype), columns[:, q]))
+        return columns
+    groups: dict = {}
+    for stage in program.stages:
+        steps = [blueprint.steps[i] for i in stage.steps]
+        signature = tuple((st.gate, None if st.matrix is None else i)
+                          for st, i in zip(steps, stage.steps))
+        groups.setdefault(signature, []).append(stage)
+    for signature, stages in groups.items():
+        total = None
+        for position, (gate, _) in enumerate(signature):
+            index = np.array([stage.steps[position] for stage in stages])
+            step = blueprint.steps[int(index[0])]
+            m = _step_matrix(step, angles[:, index], dtype)  # [batch, G, 2, 2] or [2, 2]
+            total = m if total is None else jnp.matmul(m, total)
+        total = jnp.broadcast_to(total, (batch, len(stages), 2, 2))
+        targets = np.array([next(iter(stage.qubits)) for stage in stages])
+        columns = columns.at[:, targets].set(total[..., :, 0])  # each gate applied to |0>
+    return columns
 
 
 def require_state_memory(n_samples: int, blueprint: Blueprint, budget_bytes: int,

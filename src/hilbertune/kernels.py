@@ -134,6 +134,7 @@ def fidelity_gram(states_a, states_b=None, *, block_rows: int | None = None):
     return gram
 
 
+@jax.jit
 def bloch_vectors(factors):
     """Bloch vectors of per-qubit states: real array [N, n, 3] from complex [N, n, 2]."""
     a0, a1 = factors[..., 0], factors[..., 1]
