@@ -14,7 +14,10 @@ warm-up call that compiles):
     alignment) with respect to weights, biases and bandwidth, full batch;
   * optimizer_step_s: the whole compiled step of ``train_encoding`` (value, gradient,
     global-norm clipping, Adam update), full batch, no validation split;
-  * minibatch_steps_per_s: compiled steps per second with class-balanced batches of 64.
+  * minibatch_steps_per_s: compiled steps per second with class-balanced batches of 64;
+  * step_parts: the circuit forward pass alone and with its reverse pass (cotangent given
+    as an argument), the host herk and the host backward gemm; from them the ratio a step
+    could reach if the circuit's reverse pass cost no more than its forward pass.
 Default problem: 12 qubits, N = 2000, layered encoding with 2 layers (target ratio
 value_and_grad / forward <= 2.5). ``--quick``: 8 qubits, N = 256 (a smoke check).
 Prints one JSON object.
@@ -38,8 +41,9 @@ sys.path.insert(0, os.path.join(os.path.dirname(__file__), "..", "src"))
 
 from hilbertune import build_encoding, initial_params  # noqa: E402
 from hilbertune.kernels import gram_for_training, quantum_gram  # noqa: E402
-from hilbertune.training import (_compiled_step, _StaticConfig, training_gram,  # noqa: E402
-                                 training_loss_function)
+from hilbertune.circuits import encode_states  # noqa: E402
+from hilbertune.training import (_compiled_step, _host_overlap, _host_product,  # noqa: E402
+                                 _StaticConfig, training_gram, training_loss_function)
 
 
 def timed(function, *args):
@@ -94,6 +98,29 @@ def main(argv=None):
         times["optimizer_step"].append(timed(step, *step_args))
     medians = {k: statistics.median(v) for k, v in times.items()}
 
+    # where a step's time goes: the circuit forward and reverse passes, the host products
+    circuit = jax.jit(lambda p, X: encode_states(blueprint, p, X))
+    circuit_and_reverse = jax.jit(
+        lambda p, X, c: jax.vjp(lambda q: encode_states(blueprint, q, X), p)[1](c))
+    states = np.asarray(circuit(params, X))
+    cotangent = jnp.asarray(np.random.default_rng(1).normal(size=states.shape), states.dtype)
+    weights = _host_overlap(states)
+    parts = {"circuit_forward": lambda: circuit(params, X),
+             "circuit_forward_and_reverse": lambda: circuit_and_reverse(params, X, cotangent),
+             "host_overlap_herk": lambda: _host_overlap(states),
+             "host_backward_gemm": lambda: _host_product(weights, states)}
+    part_times = {k: [] for k in parts}
+    for fn in parts.values():
+        timed(fn)  # compile / warm up
+    for _ in range(args.repeats):
+        for k, fn in parts.items():
+            part_times[k].append(timed(fn))
+    part_medians = {k + "_s": statistics.median(v) for k, v in part_times.items()}
+    # a step needs at least: circuit forward + a reverse pass (>= one more forward),
+    # herk forward and the N x N x 2^n gemm backward
+    floor = (2 * part_medians["circuit_forward_s"] + part_medians["host_overlap_herk_s"]
+             + part_medians["host_backward_gemm_s"])
+
     batch_config = config._replace(batch_counts=(32, 32))
     batch_step, _, _ = _compiled_step(blueprint, batch_config)
     compile_s["minibatch_step"] = timed(batch_step, *step_args)
@@ -118,6 +145,8 @@ def main(argv=None):
         "ratio_value_and_grad_to_forward_pairwise_median": statistics.median(
             g / f for g, f in zip(times["value_and_grad"], times["forward"])),
         "target_ratio": 2.5,
+        "step_parts": part_medians,
+        "ratio_floor_if_reverse_pass_cost_one_forward": floor / medians["forward"],
         "minibatch_size": 64,
         "minibatch_step_s": statistics.median(batch_times),
         "minibatch_steps_per_s": 1.0 / statistics.median(batch_times),

@@ -148,3 +148,26 @@ def test_parity_signs_are_diagonals_of_z_strings(dense):
     for k, qs in enumerate(sets):
         z_string = dense.embed({q: dense.Z for q in qs}, 3)
         np.testing.assert_array_equal(signs[k], np.real(np.diag(z_string)))
+
+
+@pytest.mark.parametrize("shared", [False, True])
+@pytest.mark.parametrize("qubit", [0, 2, 4])
+def test_hand_written_reverse_pass_equals_jax_autodiff(qubit, shared, rng):
+    # reference: JAX's own reverse-mode autodiff of the plain contraction (library), for a
+    # real loss of complex states so that both the state and the matrix cotangents matter
+    n, batch = 5, 3
+    states = jnp.asarray(rng.normal(size=(batch, 2**n)) + 1j * rng.normal(size=(batch, 2**n)),
+                         jnp.complex64)
+    shape = (2, 2) if shared else (batch, 2, 2)
+    matrices = jnp.asarray(rng.normal(size=shape) + 1j * rng.normal(size=shape), jnp.complex64)
+    weights = jnp.asarray(rng.normal(size=(batch, 2**n)) + 1j * rng.normal(size=(batch, 2**n)),
+                          jnp.complex64)
+
+    def loss(apply):
+        return lambda s, m: jnp.sum(jnp.abs(weights * apply(s, m, qubit, n)) ** 2)
+
+    ours = jax.grad(loss(gates.apply_one_qubit), argnums=(0, 1))(states, matrices)
+    plain = jax.grad(loss(gates._contract), argnums=(0, 1))(states, matrices)
+    for got, want in zip(ours, plain):
+        assert got.shape == want.shape
+        np.testing.assert_allclose(np.asarray(got), np.asarray(want), rtol=2e-5, atol=2e-5)

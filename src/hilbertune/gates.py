@@ -10,7 +10,10 @@ Conventions (common practice): ``RX(t) = exp(-i t X / 2)``, ``RY(t) = exp(-i t Y
 
 from __future__ import annotations
 
+import functools
+
 import numpy as np
+import jax
 import jax.numpy as jnp
 
 HADAMARD = np.array([[1.0, 1.0], [1.0, -1.0]]) / np.sqrt(2.0)
@@ -49,12 +52,17 @@ def apply_one_qubit(states, matrices, qubit: int, n_qubits: int):
     """Apply a 2x2 gate (one per state, or one shared) to ``qubit``.
 
     Reshape-and-contract: the state is viewed as [batch, 2**qubit, 2, 2**(n-qubit-1)] and
-    only the middle axis is contracted, so the cost is O(batch * 2**n).
+    only the middle axis is contracted, so the cost is O(batch * 2**n). Differentiable,
+    with a hand-written reverse pass (see ``_reverse``).
 
     Args:
       states: complex array of shape [batch, 2**n].
       matrices: complex array of shape [batch, 2, 2] or [2, 2].
     """
+    return _apply_differentiable(states, matrices, qubit, n_qubits)
+
+
+def _contract(states, matrices, qubit, n_qubits):
     batch = states.shape[0]
     view = states.reshape(batch, 2**qubit, 2, 2 ** (n_qubits - qubit - 1))
     low, high = view[:, :, 0, :], view[:, :, 1, :]
@@ -64,6 +72,34 @@ def apply_one_qubit(states, matrices, qubit: int, n_qubits: int):
     m00, m01, m10, m11 = m[..., 0, 0], m[..., 0, 1], m[..., 1, 0], m[..., 1, 1]
     out = jnp.stack([m00 * low + m01 * high, m10 * low + m11 * high], axis=2)
     return out.reshape(batch, 2**n_qubits)
+
+
+@functools.partial(jax.custom_vjp, nondiff_argnums=(2, 3))
+def _apply_differentiable(states, matrices, qubit, n_qubits):
+    return _contract(states, matrices, qubit, n_qubits)
+
+
+def _forward(states, matrices, qubit, n_qubits):
+    return _contract(states, matrices, qubit, n_qubits), (states, matrices)
+
+
+def _reverse(qubit, n_qubits, residuals, cotangent):
+    # y = M x is linear in x and in M; JAX's reverse pass is the transpose (no conjugate):
+    # dx = M^T dy, dM_ij = sum dy_i x_j over the other axes. Autodiff of the slicing above
+    # pads both halves back to full size and materializes the products (circuit forward +
+    # reverse, 12 qubits x 2000 states: 1.13 s -> 0.79 s with this).
+    states, matrices = residuals
+    d_states = _contract(cotangent, jnp.swapaxes(matrices, -1, -2), qubit, n_qubits)
+    batch = states.shape[0]
+    dy = cotangent.reshape(batch, 2**qubit, 2, 1, -1)
+    x = states.reshape(batch, 2**qubit, 1, 2, -1)
+    d_matrices = jnp.sum(dy * x, axis=(1, 4))  # [batch, 2, 2]
+    if matrices.ndim == 2:
+        d_matrices = jnp.sum(d_matrices, axis=0)
+    return d_states, d_matrices.astype(matrices.dtype)
+
+
+_apply_differentiable.defvjp(_forward, _reverse)
 
 
 def basis_bits(n_qubits: int) -> np.ndarray:
