@@ -52,8 +52,9 @@ def apply_one_qubit(states, matrices, qubit: int, n_qubits: int):
     """Apply a 2x2 gate (one per state, or one shared) to ``qubit``.
 
     Reshape-and-contract: the state is viewed as [batch, 2**qubit, 2, 2**(n-qubit-1)] and
-    only the middle axis is contracted, so the cost is O(batch * 2**n). Differentiable,
-    with a hand-written reverse pass (see ``_reverse``).
+    only the middle axis is contracted, so the cost is O(batch * 2**n). Differentiable in
+    reverse mode (``jax.grad``, ``jax.vjp``) with a hand-written reverse pass (see
+    ``_reverse``); forward mode (``jax.jvp``, ``jax.jacfwd``) is not supported.
 
     Args:
       states: complex array of shape [batch, 2**n].
