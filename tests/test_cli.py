@@ -49,7 +49,8 @@ def fitted_run(small_csv, tmp_path_factory):
     out = tmp_path_factory.mktemp("runs") / "first"
     code = cli.main(["fit", "--data", str(small_csv), "--target", "kind", "--qubits", "2",
                      "--seed", "3", "--out", str(out), "--quiet",
-                     "--set", "hardware.shots_grid=[32, 256]", *TINY])
+                     "--set", "hardware.shots_grid=[32, 256]",
+                     "--set", "hardware.readout_error=0.02", *TINY])
     assert code == 0
     return out
 
@@ -77,6 +78,8 @@ def test_fit_writes_every_artifact_and_the_summary_contract(fitted_run):
     diag = summary["diagnostics"]
     assert {"concentration", "effective_dimension", "geometric_difference"} <= set(diag)
     assert summary["dataset"]["classes"] == ["lower", "upper"]
+    noise = summary["hardware"]["device_noise"]
+    assert noise["readout_error"] == 0.02 and "readout flips" in noise["model"]
 
 
 def test_summary_accuracy_matches_an_independent_svm_on_the_stored_kernels(fitted_run):
@@ -214,6 +217,7 @@ def test_unknown_target_and_config_key_suggest_the_fix(small_csv, tmp_path, caps
     ("training.learning_rate=-1", "positive"),
     ("evaluation.shots=0", "positive"),
     ("training.steps='many'", "must be int"),
+    ("hardware.readout_error=1.5", "in [0, 1]"),
 ])
 def test_bad_numbers_in_config_exit_2(small_csv, tmp_path, capsys, setting, fragment):
     code, _, err = run(["fit", "--data", small_csv, "--target", "kind", "--set", setting,

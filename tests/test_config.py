@@ -40,6 +40,7 @@ def test_unknown_key_suggests_the_closest():
     ("encoding.family", "quantum", "one of"),
     ("data.test_fraction", 1.5, "in \\(0, 1\\)"),
     ("hardware.one_qubit_error", 2.0, "in \\[0, 1\\]"),
+    ("hardware.readout_error", -0.1, "in \\[0, 1\\]"),
     ("training.clip_norm", float("nan"), "finite"),
 ])
 def test_bad_values_are_refused_with_the_rule(key, value, fragment):

@@ -185,6 +185,57 @@ def test_depolarized_sampling_centres_on_the_global_formula():
     assert abs(swap.mean() - 0.42) < 4.5 * math.sqrt((1 - 0.42**2) / shots / K.size)
 
 
+def _bit_flip_channel(n, e):
+    # independent symmetric readout flips as a stochastic matrix on 2^n outcomes: the Kronecker
+    # product of n copies of [[1 - e, e], [e, 1 - e]] (numpy reference; common practice model)
+    one = np.array([[1 - e, e], [e, 1 - e]])
+    out = np.ones((1, 1))
+    for _ in range(n):
+        out = np.kron(out, one)
+    return out
+
+
+@pytest.mark.parametrize("n", [1, 2, 4])
+def test_readout_kernel_equals_explicit_bit_flip_channel(n):
+    e = 0.07
+    flips = _bit_flip_channel(n, e)
+    for k in (0.0, 0.3, 0.95, 1.0):
+        # outcome distribution: k on all-zeros, the rest evenly on the other outcomes
+        distribution = np.full(2**n, (1 - k) / (2**n - 1))
+        distribution[0] = k
+        observed_zero = (flips @ distribution)[0]
+        got = hw.readout_kernel(np.array([[k]]), e, n)[0, 0]
+        assert got == pytest.approx(observed_zero, abs=1e-12)
+
+
+def test_readout_kernel_is_exact_for_one_qubit_and_a_lower_estimate_otherwise(rng):
+    # one qubit: any distribution is "even off zero"; two qubits, mass next to all-zeros
+    e = 0.05
+    assert hw.readout_kernel(np.array([[0.8]]), e, 1)[0, 0] == pytest.approx(
+        (_bit_flip_channel(1, e) @ np.array([0.8, 0.2]))[0])
+    concentrated = np.array([0.8, 0.2, 0.0, 0.0])  # all off-zero mass one flip away
+    exact = (_bit_flip_channel(2, e) @ concentrated)[0]
+    assert hw.readout_kernel(np.array([[0.8]]), e, 2)[0, 0] < exact
+
+
+def test_readout_flips_shift_the_sampled_estimates():
+    shots, e, n = 200, 0.05, 3
+    K = np.full((80, 80), 0.6)
+    est = hw.shot_sampled_gram(K, shots, seed=3, symmetric=False, readout_error=e, n_qubits=n)
+    target = hw.readout_kernel(np.array([[0.6]]), e, n)[0, 0]
+    assert target < 0.6 - 0.05  # the effect is large enough to be seen
+    assert abs(est.mean() - target) < 4.5 * math.sqrt(target * (1 - target) / shots / K.size)
+    # ancilla estimators: P0 -> e + (1 - 2e) P0, so the measured value shrinks by (1 - 2e)
+    swap = hw.shot_sampled_gram(K, shots, estimator="swap_test", seed=3, symmetric=False,
+                                readout_error=e)
+    want = (1 - 2 * e) * 0.6
+    assert abs(swap.mean() - want) < 4.5 * math.sqrt((1 - want**2) / shots / K.size)
+    with pytest.raises(InvalidInputError, match="n_qubits"):
+        hw.shot_sampled_gram(K, shots, seed=3, readout_error=e)
+    with pytest.raises(InvalidInputError, match="readout_error"):
+        hw.shot_sampled_gram(K, shots, seed=3, readout_error=1.5, n_qubits=n)
+
+
 # --------------------------------------------------------------------------- PSD repair
 
 def _indefinite_gram(rng, n=12):

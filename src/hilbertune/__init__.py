@@ -28,9 +28,9 @@ from hilbertune.encodings import (FAMILIES, amplitude_state, bit_flips, build_en
 from hilbertune.errors import (ArtifactError, HilbertuneError, InvalidInputError,
                                NotFittedError, ResourceLimitError, TrainingError)
 from hilbertune.hardware import (clip_eigenvalues, compute_uncompute_depolarizing,
-                                 density_matrix_kernel, depolarize_kernel, repair_gram,
-                                 restore_unit_diagonal, shift_spectrum, shot_budget,
-                                 shot_sampled_gram, shot_variance)
+                                 density_matrix_kernel, depolarize_kernel, readout_kernel,
+                                 repair_gram, restore_unit_diagonal, shift_spectrum,
+                                 shot_budget, shot_sampled_gram, shot_variance)
 from hilbertune.kernels import (FrozenKernel, fidelity_gram, interference_zero_probability,
                                 pauli_expectations, product_gram, projected_gram, quantum_gram)
 from hilbertune.estimator import EncodingClassifier
@@ -65,7 +65,8 @@ __all__ = [
     "repeated_split_scores", "spectrum", "tuned_rbf_svm",
     # hardware and export
     "clip_eigenvalues", "compute_uncompute_depolarizing", "density_matrix_kernel",
-    "depolarize_kernel", "repair_gram", "restore_unit_diagonal", "shift_spectrum",
+    "depolarize_kernel", "readout_kernel", "repair_gram", "restore_unit_diagonal",
+    "shift_spectrum",
     "shot_budget", "shot_sampled_gram", "shot_variance",
     "encoding_to_qasm3", "kernel_circuit_to_qasm3",
     # learning

@@ -98,6 +98,8 @@ SCHEMA = {
         "tolerance": (0.02, float, _UNIT, "accepted test-accuracy loss against the exact kernel"),
         "one_qubit_error": (0.001, float, _UNIT, "depolarizing error per 1-qubit gate"),
         "two_qubit_error": (0.01, float, _UNIT, "depolarizing error per 2-qubit gate"),
+        "readout_error": (0.0, float, _UNIT, "probability that a measured bit reads wrong "
+                          "(independent, symmetric; 0 = off; give your device's figure)"),
     },
     "compute": {
         "memory_budget": ("4GiB", str, None, "memory allowed for states and Gram matrices"),

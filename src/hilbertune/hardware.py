@@ -227,27 +227,49 @@ def shot_variance(K, shots, *, estimator: str = "compute_uncompute", overlaps=No
                     + _squared_estimate_variance(overlaps.imag, shots))
 
 
-def _measured_values(K, overlaps, estimator, depolarizing, n_qubits):
-    """What the circuit measures after global depolarizing with probability p.
+def _require_qubits(estimator, depolarizing, readout_error, n_qubits) -> None:
+    if estimator == "compute_uncompute" and n_qubits is None and (depolarizing > 0
+                                                                  or readout_error > 0):
+        raise InvalidInputError("device noise on compute-uncompute needs n_qubits (the "
+                                "all-zeros probability depends on it); pass "
+                                "n_qubits=blueprint.n_qubits")
+
+
+def _measured_values(K, overlaps, estimator, depolarizing, n_qubits, readout_error=0.0):
+    """What the circuit measures after global depolarizing (p) and readout flips (e).
 
     A global depolarizing channel before the measurement mixes the outcome distribution with
     that of the maximally mixed state: ``P -> (1 - p) P + p P_mixed``. For compute-uncompute
     ``P_mixed(all zeros) = 1 / 2^n``, so ``k -> (1 - p) k + p / 2^n`` (Hubregtsen et al.,
     Phys. Rev. A 106, 042431 (2022)); for the ancilla circuits ``P_mixed(0) = 1/2``, so the
     swap test sees ``(1 - p) k`` and the Hadamard test ``(1 - p) <psi|phi>``.
+
+    Readout flips act on the measured bits afterwards. One ancilla bit read wrongly with
+    probability e turns ``P0`` into ``e + (1 - 2 e) P0``, so ``2 P0 - 1`` shrinks by
+    ``1 - 2 e`` (exact; common practice); compute-uncompute follows ``readout_kernel``.
     """
-    if depolarizing == 0.0:
-        return K, overlaps
-    if estimator == "compute_uncompute":
-        return depolarize_kernel(K, depolarizing, n_qubits), overlaps
-    if estimator == "swap_test":
-        return (1.0 - depolarizing) * K, overlaps
-    return (1.0 - depolarizing) ** 2 * K, (1.0 - depolarizing) * overlaps
+    if depolarizing > 0.0:
+        if estimator == "compute_uncompute":
+            K = depolarize_kernel(K, depolarizing, n_qubits)
+        elif estimator == "swap_test":
+            K = (1.0 - depolarizing) * K
+        else:
+            K, overlaps = (1.0 - depolarizing) ** 2 * K, (1.0 - depolarizing) * overlaps
+    if readout_error > 0.0:
+        shrink = 1.0 - 2.0 * readout_error
+        if estimator == "compute_uncompute":
+            K = readout_kernel(K, readout_error, n_qubits)
+        elif estimator == "swap_test":
+            K = shrink * K
+        else:
+            K, overlaps = shrink**2 * K, shrink * overlaps
+    return K, overlaps
 
 
 def shot_sampled_gram(K, shots, *, estimator: str = "compute_uncompute", seed,
                       symmetric: bool | None = None, estimate_diagonal: bool = False,
-                      overlaps=None, depolarizing: float = 0.0, n_qubits: int | None = None):
+                      overlaps=None, depolarizing: float = 0.0, n_qubits: int | None = None,
+                      readout_error: float = 0.0):
     """Finite-shot estimate of every kernel entry, as a quantum computer would return it.
 
     Args:
@@ -265,7 +287,10 @@ def shot_sampled_gram(K, shots, *, estimator: str = "compute_uncompute", seed,
       depolarizing: global depolarizing probability p of the whole estimation circuit
         (0 = noiseless); the estimates then scatter around the depolarized values
         (see ``_measured_values``).
-      n_qubits: qubits of the encoding; needed by compute_uncompute when depolarizing > 0.
+      n_qubits: qubits of the encoding; needed by compute_uncompute when depolarizing or
+        readout_error > 0.
+      readout_error: probability that a measured bit is read wrongly (independent,
+        symmetric), applied after depolarizing; no mitigation is applied.
 
     Returns:
       float64 array of shape [N_a, N_b]. The hadamard_test estimate is unbiased and may
@@ -277,17 +302,15 @@ def shot_sampled_gram(K, shots, *, estimator: str = "compute_uncompute", seed,
     _check_estimator(estimator)
     shots = _check_shots(shots, estimator)
     depolarizing = _check_rate(depolarizing, "depolarizing")
+    readout_error = _check_rate(readout_error, "readout_error")
     K = _as_kernel_values(K)
     symmetric = _is_symmetric(K, symmetric)
     rng = _generator(seed)
     if estimator == "hadamard_test":
         overlaps = _as_overlaps(overlaps, K)
-    if depolarizing > 0 and estimator == "compute_uncompute" and n_qubits is None:
-        raise InvalidInputError("depolarizing noise on compute-uncompute needs n_qubits (the "
-                                "all-zeros probability of the mixed state is 1/2^n); pass "
-                                "n_qubits=blueprint.n_qubits")
+    _require_qubits(estimator, depolarizing, readout_error, n_qubits)
     measured, measured_overlaps = _measured_values(K, overlaps, estimator, depolarizing,
-                                                   n_qubits)
+                                                   n_qubits, readout_error)
     if symmetric:
         rows, cols = np.triu_indices(K.shape[0], k=0 if estimate_diagonal else 1)
     else:
@@ -382,6 +405,36 @@ def depolarize_kernel(K, p: float, n_qubits: int):
     p = _check_rate(p, "p")
     n = _check_count(n_qubits, "n_qubits")
     return (1.0 - p) * _as_matrix(K, "K") + p / 2.0**n
+
+
+def readout_kernel(K, readout_error: float, n_qubits: int):
+    """Observed all-zeros frequency of compute-uncompute under readout bit flips.
+
+    Each of the n measured bits is read wrongly with probability e, independently and
+    symmetrically (common practice model). The all-zeros count then keeps a true all-zeros
+    outcome with probability ``f = (1 - e)^n`` and picks up other outcomes. Assuming the
+    non-zero outcomes share the remaining probability ``1 - k`` evenly (as the depolarized
+    part does), each flips into all-zeros with average probability ``(1 - f) / (2^n - 1)``:
+
+        k -> f k + (1 - k) (1 - f) / (2^n - 1)
+
+    Exact for one qubit and for outcome distributions that are uniform off all-zeros; for
+    concentrated distributions (neighbouring bit strings more likely) the pick-up term is a
+    lower estimate.
+
+    Args:
+      K: kernel values (or already depolarized values), array of shape [N_a, N_b].
+      readout_error: flip probability e per measured bit, in [0, 1].
+      n_qubits: measured qubits of the compute-uncompute circuit.
+
+    Returns:
+      float64 array of shape [N_a, N_b].
+    """
+    e = _check_rate(readout_error, "readout_error")
+    n = _check_count(n_qubits, "n_qubits")
+    keep = (1.0 - e) ** n
+    others = math.ldexp(1.0, n) - 1.0 if n < 1024 else math.inf
+    return keep * _as_matrix(K, "K") + (1.0 - _as_matrix(K, "K")) * (1.0 - keep) / others
 
 
 def _one_qubit_matrix(step, angles) -> np.ndarray:
@@ -692,13 +745,14 @@ def _svm_accuracy(K_train, K_test, y_train, y_test, C) -> float:
     return float(np.mean(model.predict(K_test) == y_test))
 
 
-def _analytic_shots(K_train, overlaps_train, estimator, fraction, depolarizing, n_qubits):
+def _analytic_shots(K_train, overlaps_train, estimator, fraction, depolarizing, n_qubits,
+                    readout_error=0.0):
     """Smallest shots with RMS entry std <= fraction * std of the off-diagonal entries.
 
     Rule (ours): the shot noise is negligible for the SVM when the typical (root-mean-square)
     standard deviation of an estimated off-diagonal train entry is a small fraction of how
     much those entries differ from each other. Variances are evaluated at the measured
-    (depolarized) values.
+    (noisy) values.
     """
     rows, cols = np.triu_indices(K_train.shape[0], k=1)
     if rows.size < 2:
@@ -707,7 +761,7 @@ def _analytic_shots(K_train, overlaps_train, estimator, fraction, depolarizing, 
     if spread == 0.0:
         return None, 0.0
     measured, measured_overlaps = _measured_values(K_train, overlaps_train, estimator,
-                                                   depolarizing, n_qubits)
+                                                   depolarizing, n_qubits, readout_error)
     measured = np.clip(measured, 0.0, 1.0)
     target = fraction * spread
     ov = None if measured_overlaps is None else measured_overlaps[rows, cols]
@@ -738,7 +792,7 @@ def shot_budget(K_train, K_test, y_train, y_test, *, seed, shots_grid=(10, 100, 
                 C: float = 1.0, tolerance: float = 0.02, repeats: int = 5,
                 estimator: str = "compute_uncompute", overlaps_train=None, overlaps_test=None,
                 repair: str = "clip", depolarizing: float = 0.0, n_qubits: int | None = None,
-                spread_fraction: float = 0.1) -> dict:
+                spread_fraction: float = 0.1, readout_error: float = 0.0) -> dict:
     """How many shots a learned kernel needs before its SVM accuracy stops suffering.
 
     For each shot count: sample the train Gram (symmetric, diagonal exact) and the test Gram
@@ -754,8 +808,8 @@ def shot_budget(K_train, K_test, y_train, y_test, *, seed, shots_grid=(10, 100, 
       shots_grid: increasing shot counts per circuit.
       tolerance: accuracy loss accepted relative to the exact kernel.
       overlaps_train, overlaps_test: complex overlaps, needed by hadamard_test.
-      depolarizing, n_qubits: optional global depolarizing of each estimation circuit
-        (see ``shot_sampled_gram``); the reference stays the noiseless exact kernel.
+      depolarizing, n_qubits, readout_error: optional device noise of each estimation
+        circuit (see ``shot_sampled_gram``); the reference stays the noiseless exact kernel.
       spread_fraction: the analytic rule's fraction (see ``_analytic_shots``).
 
     Returns:
@@ -799,14 +853,13 @@ def shot_budget(K_train, K_test, y_train, y_test, *, seed, shots_grid=(10, 100, 
     if not (0 < spread_fraction):
         raise InvalidInputError(f"spread_fraction must be positive, got {spread_fraction!r}")
     depolarizing = _check_rate(depolarizing, "depolarizing")
+    readout_error = _check_rate(readout_error, "readout_error")
     if repair not in REPAIR_METHODS:
         repair_gram(K_train, repair)  # raises with the list of methods
     if estimator == "hadamard_test":
         overlaps_train = _as_overlaps(overlaps_train, K_train)
         overlaps_test = _as_overlaps(overlaps_test, K_test)
-    if depolarizing > 0 and estimator == "compute_uncompute" and n_qubits is None:
-        raise InvalidInputError("depolarizing noise on compute-uncompute needs n_qubits; pass "
-                                "n_qubits=blueprint.n_qubits")
+    _require_qubits(estimator, depolarizing, readout_error, n_qubits)
 
     exact_accuracy = _svm_accuracy(K_train, K_test, y_train, y_test, C)
     exact_alignment = _alignment(K_train, y_train)
@@ -825,10 +878,12 @@ def shot_budget(K_train, K_test, y_train, y_test, *, seed, shots_grid=(10, 100, 
         for _ in range(repeats):
             noisy_train = shot_sampled_gram(K_train, shots, estimator=estimator, seed=rng,
                                             symmetric=True, overlaps=overlaps_train,
-                                            depolarizing=depolarizing, n_qubits=n_qubits)
+                                            depolarizing=depolarizing, n_qubits=n_qubits,
+                                            readout_error=readout_error)
             noisy_test = shot_sampled_gram(K_test, shots, estimator=estimator, seed=rng,
                                            symmetric=False, overlaps=overlaps_test,
-                                           depolarizing=depolarizing, n_qubits=n_qubits)
+                                           depolarizing=depolarizing, n_qubits=n_qubits,
+                                           readout_error=readout_error)
             repaired = repair_gram(noisy_train, repair)
             accuracy.append(_svm_accuracy(repaired.matrix, noisy_test, y_train, y_test, C))
             alignment.append(_alignment(repaired.matrix, y_train))
@@ -852,12 +907,13 @@ def shot_budget(K_train, K_test, y_train, y_test, *, seed, shots_grid=(10, 100, 
         else:
             break
     analytic, spread = _analytic_shots(K_train, overlaps_train, estimator, spread_fraction,
-                                       depolarizing, n_qubits)
+                                       depolarizing, n_qubits, readout_error)
     result = {
         "estimator": estimator,
         "circuits_per_entry": per_entry,
         "repair": repair,
         "depolarizing": depolarizing,
+        "readout_error": readout_error,
         "repeats": repeats,
         "tolerance": float(tolerance),
         "C": float(C),

@@ -467,18 +467,25 @@ def hardware_estimate(config, blueprint, params, X_train, X_test, k_train, k_tes
         p = hardware.compute_uncompute_depolarizing(
             blueprint, one_qubit_error=hw["one_qubit_error"],
             two_qubit_error=hw["two_qubit_error"])
-        noisy = hardware.shot_budget(k_train, k_test, y_train, y_test, depolarizing=p, **common)
+        noisy = hardware.shot_budget(k_train, k_test, y_train, y_test, depolarizing=p,
+                                     readout_error=hw["readout_error"], **common)
+        readout = {"compute_uncompute": "; then readout flips: k -> f k + (1-k)(1-f)/(2^n-1), "
+                                        "f = (1-e)^n (non-zero outcomes assumed even)",
+                   "swap_test": "; then readout flips shrink it by (1-2e)",
+                   "hadamard_test": "; then readout flips shrink it by (1-2e)"}[estimator]
         out["device_noise"] = {
             "model": {"compute_uncompute": "global depolarizing per kernel entry, k -> "
                                            "(1-p) k + p/2^n (Hubregtsen et al. 2022)",
                       "swap_test": "global depolarizing shrinks the measured value: k -> "
                                    "(1-p) k",
                       "hadamard_test": "global depolarizing shrinks the measured overlap by "
-                                       "(1-p)"}[estimator],
+                                       "(1-p)"}[estimator]
+            + (readout if hw["readout_error"] > 0 else ""),
             "p_from": "gate counts of the compute-uncompute circuit (encoding and its "
                       "inverse); for the ancilla estimators an approximation, since their "
                       "controlled circuits have more gates",
             "one_qubit_error": hw["one_qubit_error"], "two_qubit_error": hw["two_qubit_error"],
+            "readout_error": hw["readout_error"],
             "depolarizing_probability": p,
             "test_accuracy_at_most_shots": noisy["curve"][-1]["test_accuracy_mean"]
             if noisy.get("curve") else None,
