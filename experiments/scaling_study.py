@@ -117,8 +117,8 @@ def run(quick: bool, repeats: int, out_dir: Path, seed: int) -> dict:
     def gram_timer(n_qubits, X):
         blueprint = build_encoding("layered", n_features, n_qubits=n_qubits, layers=2)
         params = initial_params(blueprint, jax.random.key(seed), bandwidth=1.0, bias_scale=0.1)
-        return lambda: quantum_gram(blueprint, params, X,
-                                    memory_budget=budget).block_until_ready()
+        return lambda: jax.block_until_ready(quantum_gram(blueprint, params, X,
+                                                         memory_budget=budget))
 
     fixed_n = 10
     sizes = [100, 200, 400, 800] if quick else [250, 500, 1000, 2000, 4000]

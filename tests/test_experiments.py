@@ -1,4 +1,4 @@
-"""The benchmark scripts still run (``--quick``) and their two paths agree.
+"""The benchmark and study scripts still run (``--quick``); the Gram benchmark's paths agree.
 
 The speed figures themselves are not asserted (machines are shared and noisy); what is
 checked is that each script prints its JSON, that the Gram and the per-pair
@@ -18,16 +18,17 @@ from pathlib import Path
 ROOT = Path(__file__).resolve().parents[1]
 
 
-def _run(script):
+def _run(script, *extra):
     env = {**os.environ, "MPLBACKEND": "Agg"}
-    done = subprocess.run([sys.executable, str(ROOT / "experiments" / script), "--quick"],
+    done = subprocess.run([sys.executable, str(ROOT / "experiments" / script), "--quick",
+                           *map(str, extra)],
                           capture_output=True, text=True, timeout=600, env=env, check=False)
     assert done.returncode == 0, done.stderr[-2000:]
-    return json.loads(done.stdout)
+    return done.stdout
 
 
 def test_gram_benchmark_runs_and_its_paths_agree():
-    report = _run("bench_gram.py")
+    report = json.loads(_run("bench_gram.py"))
     assert report["per_pair"]["max_abs_diff_gram_vs_per_pair"] < 1e-5
     for ratio in (report["layered"]["ratio_total_over_baseline"],
                   report["per_pair"]["speedup"],
@@ -37,8 +38,22 @@ def test_gram_benchmark_runs_and_its_paths_agree():
 
 
 def test_training_benchmark_runs():
-    report = _run("bench_training.py")
+    report = json.loads(_run("bench_training.py"))
     assert report["ratio_optimizer_step_to_forward"] > 0
     assert report["minibatch_steps_per_s"] > 0
     assert set(report["step_parts"]) == {"circuit_forward_s", "circuit_forward_and_reverse_s",
                                          "host_overlap_herk_s", "host_backward_gemm_s"}
+
+
+def test_scaling_and_accuracy_studies_run_and_write_their_results(tmp_path):
+    _run("scaling_study.py", "--out", tmp_path)
+    scaling = json.loads((tmp_path / "scaling.json").read_text())
+    assert (tmp_path / "scaling.md").read_text().startswith("# Scaling")
+    assert all(row["seconds"] > 0 for row in scaling["by_samples"] + scaling["by_qubits"])
+    # Nystroem with fewer landmarks than samples is an approximation: error in (0, 1)
+    assert all(0 < row["relative_frobenius_error"] < 1 for row in scaling["nystroem"])
+    _run("accuracy_vs_qubits.py", "--out", tmp_path)
+    accuracy = json.loads((tmp_path / "accuracy_vs_qubits.json").read_text())
+    assert {"quantum_untrained", "quantum_trained", "rbf_svm", "linear_svm"} <= set(accuracy)
+    assert (tmp_path / "scaling_vs_samples.png").stat().st_size > 0
+    assert (tmp_path / "accuracy_vs_qubits.png").stat().st_size > 0
