@@ -432,9 +432,10 @@ def readout_kernel(K, readout_error: float, n_qubits: int):
     """
     e = _check_rate(readout_error, "readout_error")
     n = _check_count(n_qubits, "n_qubits")
+    K = _as_matrix(K, "K")
     keep = (1.0 - e) ** n
     others = math.ldexp(1.0, n) - 1.0 if n < 1024 else math.inf
-    return keep * _as_matrix(K, "K") + (1.0 - _as_matrix(K, "K")) * (1.0 - keep) / others
+    return keep * K + (1.0 - K) * (1.0 - keep) / others
 
 
 def _one_qubit_matrix(step, angles) -> np.ndarray:

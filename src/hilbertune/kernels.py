@@ -68,23 +68,27 @@ def _abs2(overlap: np.ndarray) -> np.ndarray:
     return np.square(overlap.real) + np.square(overlap.imag)
 
 
-def _numpy_gram(states_a: np.ndarray, states_b, block_rows: int | None) -> np.ndarray:
-    """BLAS path (no autodiff needed): Hermitian rank-k update for the symmetric Gram.
+def herk_upper(states: np.ndarray) -> np.ndarray:
+    """Upper triangle of ``conj(S S^H)`` by BLAS ``herk``; the strict lower triangle is 0.
 
     ``herk`` fills one triangle of ``A^H A`` with half the work of a general product. The
     C-ordered states [N, D] are a Fortran-ordered [D, N] matrix, so ``trans=2`` gives
-    ``conj(S S^H)`` without a copy; the kernel |.|^2 is the same.
+    ``conj(S S^H)`` without a copy, written into a zero-initialized output.
     """
     from scipy.linalg import blas
 
-    complex128 = states_a.dtype == np.complex128
+    herk = blas.zherk if states.dtype == np.complex128 else blas.cherk
+    return herk(1.0, states.T, trans=2, lower=0)
+
+
+def _numpy_gram(states_a: np.ndarray, states_b, block_rows: int | None) -> np.ndarray:
+    """BLAS path (no autodiff needed): ``herk`` for the symmetric Gram, ``gemm`` blocks
+    otherwise (|.|^2 is the same for ``conj(S S^H)``)."""
     if states_b is None:
         n = states_a.shape[0]
-        herk = blas.zherk if complex128 else blas.cherk
         if block_rows is None or block_rows >= n:
-            # herk writes only the upper triangle of a zero-initialized output, so the
-            # strict lower triangle of |.|^2 is 0 and one transposed add mirrors it
-            upper = _abs2(herk(1.0, states_a.T, trans=2, lower=0))
+            # the strict lower triangle of |upper|^2 is 0: one transposed add mirrors it
+            upper = _abs2(herk_upper(states_a))
             gram = upper + upper.T
         else:  # memory-bounded: row blocks of the general product
             gram = np.empty((n, n), upper_dtype(states_a))

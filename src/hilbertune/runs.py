@@ -469,10 +469,9 @@ def hardware_estimate(config, blueprint, params, X_train, X_test, k_train, k_tes
             two_qubit_error=hw["two_qubit_error"])
         noisy = hardware.shot_budget(k_train, k_test, y_train, y_test, depolarizing=p,
                                      readout_error=hw["readout_error"], **common)
-        readout = {"compute_uncompute": "; then readout flips: k -> f k + (1-k)(1-f)/(2^n-1), "
-                                        "f = (1-e)^n (non-zero outcomes assumed even)",
-                   "swap_test": "; then readout flips shrink it by (1-2e)",
-                   "hadamard_test": "; then readout flips shrink it by (1-2e)"}[estimator]
+        readout = ("; then readout flips: k -> f k + (1-k)(1-f)/(2^n-1), f = (1-e)^n "
+                   "(non-zero outcomes assumed even)" if estimator == "compute_uncompute"
+                   else "; then readout flips shrink it by (1-2e)")
         out["device_noise"] = {
             "model": {"compute_uncompute": "global depolarizing per kernel entry, k -> "
                                            "(1-p) k + p/2^n (Hubregtsen et al. 2022)",

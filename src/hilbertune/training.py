@@ -35,7 +35,7 @@ from hilbertune import artifacts
 from hilbertune.circuits import (PARAM_NAMES, Blueprint, compile_blueprint, encode_states,
                                  initial_params, is_product, validate_features)
 from hilbertune.errors import ArtifactError, InvalidInputError, ResourceLimitError, TrainingError
-from hilbertune.kernels import gram_for_training, resolve_memory_budget
+from hilbertune.kernels import gram_for_training, herk_upper, resolve_memory_budget
 from hilbertune import objectives
 
 OPTIMIZERS = ("adam", "sgd", "rmsprop", "adamw")
@@ -371,15 +371,10 @@ def _optimizer(config: _StaticConfig):
 def _host_overlap(states):
     """O = S S^H on the host with BLAS ``herk`` (half the work of a general product).
 
-    ``herk`` with ``trans=2`` on the Fortran view [D, N] of the C-ordered states gives the
-    upper triangle U of ``conj(S S^H)`` in a zero-initialized output; O is Hermitian, so
-    O = conj(U) + U^T with the (real) diagonal counted once.
+    ``kernels.herk_upper`` gives the upper triangle U of ``conj(S S^H)`` with zeros below;
+    O is Hermitian, so O = conj(U) + U^T with the (real) diagonal counted once.
     """
-    from scipy.linalg import blas
-
-    states = np.ascontiguousarray(states)
-    herk = blas.zherk if states.dtype == np.complex128 else blas.cherk
-    upper = herk(1.0, states.T, trans=2, lower=0)
+    upper = herk_upper(np.ascontiguousarray(states))
     overlap = np.empty(upper.shape, upper.dtype)  # C order, as XLA expects it back
     np.conjugate(upper, out=overlap)
     overlap += upper.T
