@@ -209,7 +209,8 @@ def test_readout_kernel_equals_explicit_bit_flip_channel(n):
 
 
 def test_readout_kernel_is_exact_for_one_qubit_and_a_lower_estimate_otherwise(rng):
-    # one qubit: any distribution is "even off zero"; two qubits, mass next to all-zeros
+    # reference: the explicit bit-flip stochastic matrix above (numpy). One qubit: any
+    # distribution is "even off zero"; two qubits, all off-zero mass next to all-zeros
     e = 0.05
     assert hw.readout_kernel(np.array([[0.8]]), e, 1)[0, 0] == pytest.approx(
         (_bit_flip_channel(1, e) @ np.array([0.8, 0.2]))[0])
@@ -226,6 +227,7 @@ def test_readout_flips_shift_the_sampled_estimates():
     assert target < 0.6 - 0.05  # the effect is large enough to be seen
     assert abs(est.mean() - target) < 4.5 * math.sqrt(target * (1 - target) / shots / K.size)
     # ancilla estimators: P0 -> e + (1 - 2e) P0, so the measured value shrinks by (1 - 2e)
+    # (symmetric bit-flip channel on one bit; common practice)
     swap = hw.shot_sampled_gram(K, shots, estimator="swap_test", seed=3, symmetric=False,
                                 readout_error=e)
     want = (1 - 2 * e) * 0.6
