@@ -16,7 +16,7 @@ import jax
 import jax.numpy as jnp
 from hypothesis import HealthCheck, given, settings, strategies as st
 
-from hilbertune import circuits
+from hilbertune import circuits, encodings
 from hilbertune.circuits import AngleRule, Blueprint, Step
 from hilbertune.errors import InvalidInputError
 
@@ -343,3 +343,17 @@ def test_state_memory_bytes():
     # complex64 = 8 bytes per amplitude (numpy itemsize)
     assert circuits.state_memory_bytes(10, 3) == 10 * 8 * np.dtype(np.complex64).itemsize
     assert circuits.state_memory_bytes(10, 3, jnp.complex128) == 10 * 8 * 16
+
+
+@pytest.mark.parametrize("n_qubits", [7, 8, 11])
+def test_product_state_shortcut_equals_gate_by_gate_application(n_qubits):
+    # encode_states builds the leading 1-qubit layer as a Kronecker product (from 8 qubits
+    # as a batched matrix product of two halves); apply_circuit applies every gate to
+    # |0...0> one at a time, as in the dense-matrix checks above
+    blueprint = encodings.build_encoding("layered", n_qubits, n_qubits=n_qubits, layers=2)
+    params = circuits.initial_params(blueprint, jax.random.key(3), bias_scale=0.3)
+    X = np.random.default_rng(n_qubits).uniform(-2.0, 2.0, size=(5, n_qubits))
+    zero = jnp.zeros((5, 2**n_qubits), jnp.complex64).at[:, 0].set(1.0)
+    reference = circuits.apply_circuit(blueprint, params, jnp.asarray(X, jnp.float32), zero)
+    np.testing.assert_allclose(np.asarray(circuits.encode_states(blueprint, params, X)),
+                               np.asarray(reference), atol=1e-5)

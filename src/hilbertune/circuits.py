@@ -403,11 +403,27 @@ def _product_prefix(blueprint, program, angles, dtype):
         (q,) = stage.qubits
         columns[q] = _local_matrix(blueprint, stage, angles, dtype)[:, :, 0]
     zero = jnp.broadcast_to(jnp.asarray([1.0, 0.0], dtype), (batch, 2))
-    state = jnp.ones((batch, 1), dtype)
-    for q in range(blueprint.n_qubits):
-        v = columns.get(q, zero)
-        state = (state[:, :, None] * v[:, None, :]).reshape(batch, -1)
-    return state
+
+    def kron(qubits):
+        state = jnp.ones((batch, 1), dtype)
+        for q in qubits:
+            state = (state[:, :, None] * columns.get(q, zero)[:, None, :]).reshape(batch, -1)
+        return state
+
+    n = blueprint.n_qubits
+    if n < 8:
+        return kron(range(n))
+    # The two halves' outer product as a batched matrix product with a zero second slot
+    # (contraction length 2, so XLA keeps it a product): XLA materializes its result once.
+    # Written elementwise, XLA fused the whole n-factor product into every consumer and
+    # recomputed it there (n - 1 complex products per amplitude, three times in a training
+    # step). 12 qubits, 2000 states: circuit forward 0.19 s -> 0.13 s, forward and reverse
+    # 0.50 s -> 0.36 s.
+    half = n // 2
+    head, tail = kron(range(half)), kron(range(half, n))
+    head = jnp.stack([head, jnp.zeros_like(head)], axis=-1)  # [batch, 2**half, 2]
+    tail = jnp.stack([tail, jnp.zeros_like(tail)], axis=1)  # [batch, 2, 2**(n - half)]
+    return jnp.matmul(head, tail).reshape(batch, -1)
 
 
 def _amplitude_states(blueprint, X, dtype):

@@ -382,34 +382,40 @@ def _host_overlap(states):
     return overlap
 
 
-def _host_product(weights, states):
-    """W @ S on the host with scipy's BLAS ``gemm``, no copies.
-
-    The C-ordered operands are the Fortran-ordered transposes, so ``gemm(S^T, W^T)`` gives
-    ``(W S)^T`` in Fortran order, which is ``W S`` in C order.
-    """
-    from scipy.linalg import blas
-
-    weights, states = np.asarray(weights), np.ascontiguousarray(states)
-    gemm = blas.zgemm if states.dtype == np.complex128 else blas.cgemm
-    return gemm(1.0, states.T, np.ascontiguousarray(weights).T).T
-
-
 def _overlap_on_host(states):
     shape = jax.ShapeDtypeStruct((states.shape[0], states.shape[0]), states.dtype)
     return jax.pure_callback(_host_overlap, shape, states)
-
-
-def _product_on_host(weights, states):
-    return jax.pure_callback(_host_product, jax.ShapeDtypeStruct(states.shape, states.dtype),
-                             weights, states)
 
 
 def _overlap_in_xla(states):
     return states @ jnp.conj(states).T
 
 
-def _fidelity_with(overlap_fn, product_fn):
+def planar_matmul(weights, real, imag):
+    """``W @ (A + iB)`` for a complex W as three real products (Gauss's trick).
+
+    ``T1 = Re W @ A``, ``T2 = Im W @ B``, ``T3 = (Re W + Im W) @ (A + B)``; then
+    ``Re = T1 - T2`` and ``Im = T3 - T1 - T2`` (Knuth, TAOCP vol. 2, 4.6.4: three real
+    multiplications per complex one). Three real float32 products instead of the four a
+    complex product costs; XLA's CPU float32 product runs at OpenBLAS ``sgemm`` speed, so
+    this needs no host callback (2000 x 2000 by 2000 x 4096: 0.54 s against 0.81 s for
+    ``cgemm``, experiments/bench_training.py ``step_parts``).
+
+    Args:
+      weights: complex array of shape [N, N].
+      real, imag: real arrays of shape [N, D].
+
+    Returns:
+      (real part, imaginary part), real arrays of shape [N, D].
+    """
+    w_real, w_imag = jnp.real(weights), jnp.imag(weights)
+    t1 = w_real @ real
+    t2 = w_imag @ imag
+    t3 = (w_real + w_imag) @ (real + imag)
+    return t1 - t2, t3 - t1 - t2
+
+
+def _fidelity_with(overlap_fn):
     """|S S^H|^2 as a function of (Re S, Im S) with the symmetric custom derivative."""
 
     @jax.custom_vjp
@@ -418,30 +424,28 @@ def _fidelity_with(overlap_fn, product_fn):
         return jnp.real(overlap) ** 2 + jnp.imag(overlap) ** 2
 
     def forward(real, imag):
-        states = jax.lax.complex(real, imag)
-        overlap = overlap_fn(states)
-        return jnp.real(overlap) ** 2 + jnp.imag(overlap) ** 2, (states, overlap)
+        overlap = overlap_fn(jax.lax.complex(real, imag))
+        return jnp.real(overlap) ** 2 + jnp.imag(overlap) ** 2, (real, imag, overlap)
 
     def backward(residuals, cotangent):
         # K = |O|^2 with O = S S^H, S = A + iB. K is symmetric, so only the symmetric part
         # G_s of the cotangent matters, and dL/dA + i dL/dB = 4 (G_s * O) S (derivation:
         # R = Re O = A A^T + B B^T, I = Im O = B A^T - A B^T, K = R^2 + I^2). One complex
-        # product instead of the two that differentiating S @ conj(S).T operand by operand
-        # costs.
-        states, overlap = residuals
+        # product (done as three real ones) instead of the two complex products that
+        # differentiating S @ conj(S).T operand by operand costs.
+        real, imag, overlap = residuals
         symmetric = 0.5 * (cotangent + cotangent.T)
         weights = 4.0 * symmetric.astype(overlap.dtype) * overlap
-        gradient = product_fn(weights, states)
-        return jnp.real(gradient), jnp.imag(gradient)
+        return planar_matmul(weights, real, imag)
 
     fidelity.defvjp(forward, backward)
     return fidelity
 
 
-_fidelity_on_host = _fidelity_with(_overlap_on_host, _product_on_host)
-_fidelity_in_xla = _fidelity_with(_overlap_in_xla, jnp.matmul)
+_fidelity_on_host = _fidelity_with(_overlap_on_host)
+_fidelity_in_xla = _fidelity_with(_overlap_in_xla)
 
-# complex multiply-adds of S S^H from which the host BLAS path pays off (a callback costs a
+# complex multiply-adds of S S^H from which the host herk pays off (a callback costs a
 # fixed overhead; small products stay inside the compiled XLA graph)
 HOST_PRODUCT_WORK = 2**27
 
@@ -451,11 +455,11 @@ def symmetric_fidelity_gram(states):
 
     Same values as ``kernels.gram_for_training`` on states. The derivative uses that K is
     symmetric (see ``_fidelity_with``), where differentiating ``S @ conj(S).T`` operand by
-    operand costs two products. Large problems (N^2 * 2^n >= HOST_PRODUCT_WORK) run the
-    products on the host through ``jax.pure_callback``: a BLAS ``herk`` forward (half the
-    work of a general product) and a BLAS ``gemm`` backward, because XLA's CPU complex
-    product was 1.85x slower than OpenBLAS here (2000 x 4096 states: 3.5 s vs 1.9 s; herk
-    1.0 s). Not differentiable twice.
+    operand costs two products; that product is done as three real float32 products
+    (``planar_matmul``). Large problems (N^2 * 2^n >= HOST_PRODUCT_WORK) compute the
+    forward overlap on the host through ``jax.pure_callback`` with BLAS ``herk`` (half the
+    work of a general product; XLA's CPU complex product was 1.85x slower than OpenBLAS
+    here, 2000 x 4096 states: 3.5 s vs 1.9 s, herk 1.0 s). Not differentiable twice.
 
     Args:
       states: complex array of shape [N, 2**n].
