@@ -16,7 +16,7 @@ warm-up call that compiles):
     global-norm clipping, Adam update), full batch, no validation split;
   * minibatch_steps_per_s: compiled steps per second with class-balanced batches of 64;
   * step_parts: the circuit forward pass alone and with its reverse pass (cotangent given
-    as an argument), the host herk, the backward product W @ S as three real products
+    as an argument), both also with all rows in one batch instead of cache-sized chunks, the host herk, the backward product W @ S as three real products
     and, side by side, the same product as one OpenBLAS ``cgemm``; from them the ratio a
     step could reach if the circuit's reverse pass cost no more than its forward pass.
 Default problem: 12 qubits, N = 2000, layered encoding with 2 layers (target ratio
@@ -104,6 +104,10 @@ def main(argv=None):
     circuit = jax.jit(lambda p, X: encode_states(blueprint, p, X))
     circuit_and_reverse = jax.jit(
         lambda p, X, c: jax.vjp(lambda q: encode_states(blueprint, q, X), p)[1](c))
+    whole = n_samples  # side by side: all rows in one batch instead of cache-sized chunks
+    circuit_whole = jax.jit(lambda p, X: encode_states(blueprint, p, X, chunk_size=whole))
+    circuit_and_reverse_whole = jax.jit(lambda p, X, c: jax.vjp(
+        lambda q: encode_states(blueprint, q, X, chunk_size=whole), p)[1](c))
     states = np.asarray(circuit(params, X))
     cotangent = jnp.asarray(np.random.default_rng(1).normal(size=states.shape), states.dtype)
     weights = _host_overlap(states)
@@ -111,6 +115,9 @@ def main(argv=None):
     backward = jax.jit(planar_matmul)
     parts = {"circuit_forward": lambda: circuit(params, X),
              "circuit_forward_and_reverse": lambda: circuit_and_reverse(params, X, cotangent),
+             "circuit_forward_unchunked": lambda: circuit_whole(params, X),
+             "circuit_forward_and_reverse_unchunked":
+                 lambda: circuit_and_reverse_whole(params, X, cotangent),
              "host_overlap_herk": lambda: _host_overlap(states),
              "backward_three_real_products": lambda: backward(weights_j, real, imag),
              "reference_host_cgemm": lambda: blas.cgemm(1.0, states.T, weights.T)}
@@ -152,6 +159,14 @@ def main(argv=None):
         "target_ratio": 2.5,
         "step_parts": part_medians,
         "ratio_floor_if_reverse_pass_cost_one_forward": floor / medians["forward"],
+        # the products alone: (herk + backward product) / herk, the ratio a step would have
+        # if the circuit and its reverse pass cost nothing
+        "ratio_floor_if_circuit_cost_nothing": (
+            (part_medians["host_overlap_herk_s"] + part_medians["backward_three_real_products_s"])
+            / part_medians["host_overlap_herk_s"]),
+        "ratio_chunked_to_unchunked_circuit_forward_and_reverse": (
+            part_medians["circuit_forward_and_reverse_s"]
+            / part_medians["circuit_forward_and_reverse_unchunked_s"]),
         "ratio_three_real_products_to_cgemm": (part_medians["backward_three_real_products_s"]
                                                / part_medians["reference_host_cgemm_s"]),
         "minibatch_size": 64,

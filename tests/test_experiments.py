@@ -41,8 +41,11 @@ def test_training_benchmark_runs():
     report = json.loads(_run("bench_training.py"))
     assert report["ratio_optimizer_step_to_forward"] > 0
     assert report["minibatch_steps_per_s"] > 0
-    assert set(report["step_parts"]) == {"circuit_forward_s", "circuit_forward_and_reverse_s",
-                                         "host_overlap_herk_s", "host_backward_gemm_s"}
+    assert set(report["step_parts"]) == {
+        "circuit_forward_s", "circuit_forward_and_reverse_s", "circuit_forward_unchunked_s",
+        "circuit_forward_and_reverse_unchunked_s", "host_overlap_herk_s",
+        "backward_three_real_products_s", "reference_host_cgemm_s"}
+    assert report["ratio_floor_if_circuit_cost_nothing"] > 1
 
 
 def test_scaling_and_accuracy_studies_run_and_write_their_results(tmp_path):

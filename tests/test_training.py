@@ -238,7 +238,11 @@ def test_host_blas_gram_path_matches_xla_and_is_repeatable():
         return jnp.real(overlap) ** 2 + jnp.imag(overlap) ** 2
 
     results = {}
-    for name, fn in (("host", _fidelity_on_host), ("xla", _fidelity_in_xla), ("plain", plain)):
+    def complex_input(fidelity):
+        return lambda real, imag: fidelity(jax.lax.complex(real, imag))
+
+    for name, fn in (("host", complex_input(_fidelity_on_host)),
+                     ("xla", complex_input(_fidelity_in_xla)), ("plain", plain)):
         value_and_grad = jax.jit(jax.value_and_grad(lambda r, i: jnp.sum(W * fn(r, i)),
                                                     argnums=(0, 1)))
         results[name] = value_and_grad(*parts)

@@ -471,13 +471,31 @@ def apply_circuit(blueprint: Blueprint, params: dict, X, states, *, inverse: boo
 @functools.partial(jax.jit, static_argnames=("blueprint", "dtype", "chunk_size"))
 def _encode_jit(blueprint, params, X, dtype, chunk_size):
     n_samples = X.shape[0]
-    if chunk_size is None or chunk_size >= n_samples:
+    if chunk_size >= n_samples:
         return _states_batch(blueprint, params, X, dtype)
     n_chunks = -(-n_samples // chunk_size)
     padded = jnp.pad(X, ((0, n_chunks * chunk_size - n_samples), (0, 0)), constant_values=1.0)
     chunks = padded.reshape(n_chunks, chunk_size, X.shape[1])
-    out = jax.lax.map(lambda xc: _states_batch(blueprint, params, xc, dtype), chunks)
+    # under differentiation the chunk's forward pass is recomputed in the reverse pass
+    # while its states are still in cache, instead of storing every intermediate state
+    body = jax.checkpoint(lambda xc: _states_batch(blueprint, params, xc, dtype))
+    out = jax.lax.map(body, chunks)
     return out.reshape(n_chunks * chunk_size, -1)[:n_samples]
+
+
+# bytes of states per chunk when the chunk size is automatic: small enough to stay in a
+# last-level cache, large enough that each gate is one long vectorized loop. 12 qubits,
+# 2000 states, 2-core machine with 32 MiB L3: circuit forward 0.13 s -> 0.07 s, forward
+# and reverse 0.36 s -> 0.25 s against all states at once (experiments/bench_training.py).
+CACHE_CHUNK_BYTES = 4 * 2**20
+
+
+def automatic_chunk(n_samples: int, n_qubits: int, dtype=jnp.complex64) -> int:
+    """Rows per chunk for ``encode_states``: about CACHE_CHUNK_BYTES of states, or all
+    rows when there are fewer than two chunks' worth."""
+    row_bytes = (2**n_qubits) * jnp.dtype(dtype).itemsize
+    rows = max(1, CACHE_CHUNK_BYTES // row_bytes)
+    return n_samples if n_samples < 2 * rows else rows
 
 
 def check_dtype(dtype):
@@ -503,7 +521,8 @@ def encode_states(blueprint: Blueprint, params: dict, X, *, dtype=jnp.complex64,
       params: dict from ``initial_params``.
       X: float array of shape [N, F].
       dtype: complex64 (default) or complex128.
-      chunk_size: process this many samples at a time (bounds intermediate memory).
+      chunk_size: process this many samples at a time (None: chunks of about
+        ``CACHE_CHUNK_BYTES`` of states, see ``automatic_chunk``).
       memory_budget: bytes or a string such as "4GiB" (None: the default budget); concrete
         inputs whose states would not fit are refused before anything is allocated.
 
@@ -518,7 +537,10 @@ def encode_states(blueprint: Blueprint, params: dict, X, *, dtype=jnp.complex64,
         require_state_memory(X.shape[0], blueprint, resolve_memory_budget(memory_budget), dtype)
     if chunk_size is not None and chunk_size < 1:
         raise InvalidInputError(f"chunk_size must be a positive integer, got {chunk_size}")
-    return _encode_jit(blueprint, params, jnp.asarray(X, _real_dtype(dtype)), dtype, chunk_size)
+    X = jnp.asarray(X, _real_dtype(dtype))
+    if chunk_size is None:
+        chunk_size = automatic_chunk(X.shape[0], blueprint.n_qubits, dtype)
+    return _encode_jit(blueprint, params, X, dtype, chunk_size)
 
 
 def product_factors(blueprint: Blueprint, params: dict, X, *, dtype=jnp.complex64):

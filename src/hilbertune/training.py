@@ -416,27 +416,29 @@ def planar_matmul(weights, real, imag):
 
 
 def _fidelity_with(overlap_fn):
-    """|S S^H|^2 as a function of (Re S, Im S) with the symmetric custom derivative."""
+    """|S S^H|^2 as a function of complex states S with the symmetric custom derivative."""
 
     @jax.custom_vjp
-    def fidelity(real, imag):
-        overlap = overlap_fn(jax.lax.complex(real, imag))
+    def fidelity(states):
+        overlap = overlap_fn(states)
         return jnp.real(overlap) ** 2 + jnp.imag(overlap) ** 2
 
-    def forward(real, imag):
-        overlap = overlap_fn(jax.lax.complex(real, imag))
-        return jnp.real(overlap) ** 2 + jnp.imag(overlap) ** 2, (real, imag, overlap)
+    def forward(states):
+        overlap = overlap_fn(states)
+        return jnp.real(overlap) ** 2 + jnp.imag(overlap) ** 2, (states, overlap)
 
     def backward(residuals, cotangent):
         # K = |O|^2 with O = S S^H, S = A + iB. K is symmetric, so only the symmetric part
         # G_s of the cotangent matters, and dL/dA + i dL/dB = 4 (G_s * O) S (derivation:
         # R = Re O = A A^T + B B^T, I = Im O = B A^T - A B^T, K = R^2 + I^2). One complex
         # product (done as three real ones) instead of the two complex products that
-        # differentiating S @ conj(S).T operand by operand costs.
-        real, imag, overlap = residuals
+        # differentiating S @ conj(S).T operand by operand costs. JAX's cotangent of a
+        # complex input of a real function is dL/dA - i dL/dB.
+        states, overlap = residuals
         symmetric = 0.5 * (cotangent + cotangent.T)
         weights = 4.0 * symmetric.astype(overlap.dtype) * overlap
-        return planar_matmul(weights, real, imag)
+        d_real, d_imag = planar_matmul(weights, jnp.real(states), jnp.imag(states))
+        return (jax.lax.complex(d_real, -d_imag),)
 
     fidelity.defvjp(forward, backward)
     return fidelity
@@ -470,7 +472,7 @@ def symmetric_fidelity_gram(states):
     n_rows, dim = states.shape
     large = n_rows * n_rows * dim >= HOST_PRODUCT_WORK
     fidelity = _fidelity_on_host if large else _fidelity_in_xla
-    return fidelity(jnp.real(states), jnp.imag(states))
+    return fidelity(states)
 
 
 def training_gram(blueprint: Blueprint, params: dict, X):
