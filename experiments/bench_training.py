@@ -9,7 +9,7 @@ warm-up call that compiles):
   * forward_gram_xla_s: the same values from the jitted ``kernels.gram_for_training``
     (states + one XLA complex product);
   * forward_training_gram_s: the same values through ``training.training_gram`` (the
-    function training differentiates: BLAS herk forward, one BLAS gemm backward);
+    function training differentiates: BLAS herk forward, three real products backward);
   * value_and_grad_s: one training step's objective value and gradient (centered
     alignment) with respect to weights, biases and bandwidth, full batch;
   * optimizer_step_s: the whole compiled step of ``train_encoding`` (value, gradient,
@@ -129,7 +129,7 @@ def main(argv=None):
             part_times[k].append(timed(fn))
     part_medians = {k + "_s": statistics.median(v) for k, v in part_times.items()}
     # a step needs at least: circuit forward + a reverse pass (>= one more forward),
-    # herk forward and the N x N x 2^n gemm backward
+    # herk forward and the N x N x 2^n backward product
     floor = (2 * part_medians["circuit_forward_s"] + part_medians["host_overlap_herk_s"]
              + part_medians["backward_three_real_products_s"])
 
