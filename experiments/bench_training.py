@@ -16,9 +16,11 @@ warm-up call that compiles):
     global-norm clipping, Adam update), full batch, no validation split;
   * minibatch_steps_per_s: compiled steps per second with class-balanced batches of 64;
   * step_parts: the circuit forward pass alone and with its reverse pass (cotangent given
-    as an argument), both also with all rows in one batch instead of cache-sized chunks, the host herk, the backward product W @ S as three real products
-    and, side by side, the same product as one OpenBLAS ``cgemm``; from them the ratio a
-    step could reach if the circuit's reverse pass cost no more than its forward pass.
+    as an argument), both also with all rows in one batch instead of cache-sized chunks;
+    the host herk; the backward product W @ S as three real products and, side by side,
+    the same product as one OpenBLAS ``cgemm``. From them: the ratio a step could reach if
+    the circuit's reverse pass cost no more than its forward pass, and the ratio of the
+    two products alone (the floor if the circuit cost nothing).
 Default problem: 12 qubits, N = 2000, layered encoding with 2 layers (target ratio
 value_and_grad / forward <= 2.5). ``--quick``: 8 qubits, N = 256 (a smoke check).
 Prints one JSON object.

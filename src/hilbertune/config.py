@@ -103,7 +103,8 @@ SCHEMA = {
     },
     "compute": {
         "memory_budget": ("4GiB", str, None, "memory allowed for states and Gram matrices"),
-        "chunk_size": (0, int, _NON_NEGATIVE, "samples per state chunk (0 = automatic, about 4 MiB of states)"),
+        "chunk_size": (0, int, _NON_NEGATIVE,
+                       "samples per state chunk (0 = automatic, about 4 MiB of states)"),
     },
 }
 
