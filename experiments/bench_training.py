@@ -18,9 +18,11 @@ warm-up call that compiles):
   * step_parts: the circuit forward pass alone and with its reverse pass (cotangent given
     as an argument), both also with all rows in one batch instead of cache-sized chunks;
     the host herk; the backward product W @ S as three real products and, side by side,
-    the same product as one OpenBLAS ``cgemm``. From them: the ratio a step could reach if
-    the circuit's reverse pass cost no more than its forward pass, and the ratio of the
-    two products alone (the floor if the circuit cost nothing).
+    the same product as one OpenBLAS ``cgemm``; one real float32 product of the same
+    shape (the unit in which herk costs two and the backward three). From them: the
+    ratio of a step made of nothing but the products and the circuit; the ratio a step
+    could reach if the circuit's reverse pass cost no more than its forward pass; and the
+    ratio of the two products alone (the floor if the circuit cost nothing).
 Default problem: 12 qubits, N = 2000, layered encoding with 2 layers (target ratio
 value_and_grad / forward <= 2.5). ``--quick``: 8 qubits, N = 256 (a smoke check).
 Prints one JSON object.
@@ -87,21 +89,6 @@ def main(argv=None):
     step_args = (params, opt_state, {}, params, X, y, members, sizes, X[:1], y[:1],
                  jax.random.key(1))
 
-    compile_s = {"forward": timed(forward, params, X),
-                 "forward_xla": timed(forward_xla, params, X),
-                 "forward_training_gram": timed(forward_training, params, X),
-                 "value_and_grad": timed(value_and_grad, params, X, y),
-                 "optimizer_step": timed(step, *step_args)}
-    times = {"forward": [], "forward_xla": [], "forward_training_gram": [],
-             "value_and_grad": [], "optimizer_step": []}
-    for _ in range(args.repeats):
-        times["forward"].append(timed(forward, params, X))
-        times["forward_xla"].append(timed(forward_xla, params, X))
-        times["forward_training_gram"].append(timed(forward_training, params, X))
-        times["value_and_grad"].append(timed(value_and_grad, params, X, y))
-        times["optimizer_step"].append(timed(step, *step_args))
-    medians = {k: statistics.median(v) for k, v in times.items()}
-
     # where a step's time goes: the circuit forward and reverse passes, the host products
     circuit = jax.jit(lambda p, X: encode_states(blueprint, p, X))
     circuit_and_reverse = jax.jit(
@@ -115,6 +102,8 @@ def main(argv=None):
     weights = _host_overlap(states)
     weights_j, real, imag = jnp.asarray(weights), jnp.real(states), jnp.imag(states)
     backward = jax.jit(planar_matmul)
+    one_product = jax.jit(jnp.matmul)  # one of the backward's three real products
+    w_real = jnp.real(weights_j)
     parts = {"circuit_forward": lambda: circuit(params, X),
              "circuit_forward_and_reverse": lambda: circuit_and_reverse(params, X, cotangent),
              "circuit_forward_unchunked": lambda: circuit_whole(params, X),
@@ -122,13 +111,29 @@ def main(argv=None):
                  lambda: circuit_and_reverse_whole(params, X, cotangent),
              "host_overlap_herk": lambda: _host_overlap(states),
              "backward_three_real_products": lambda: backward(weights_j, real, imag),
+             "one_real_product": lambda: one_product(w_real, real),
              "reference_host_cgemm": lambda: blas.cgemm(1.0, states.T, weights.T)}
-    part_times = {k: [] for k in parts}
+
+    compile_s = {"forward": timed(forward, params, X),
+                 "forward_xla": timed(forward_xla, params, X),
+                 "forward_training_gram": timed(forward_training, params, X),
+                 "value_and_grad": timed(value_and_grad, params, X, y),
+                 "optimizer_step": timed(step, *step_args)}
     for fn in parts.values():
         timed(fn)  # compile / warm up
+    times = {"forward": [], "forward_xla": [], "forward_training_gram": [],
+             "value_and_grad": [], "optimizer_step": []}
+    part_times = {k: [] for k in parts}
+    # one loop: every repeat times everything, so the parts and the whole see the same load
     for _ in range(args.repeats):
+        times["forward"].append(timed(forward, params, X))
+        times["value_and_grad"].append(timed(value_and_grad, params, X, y))
+        times["forward_xla"].append(timed(forward_xla, params, X))
+        times["forward_training_gram"].append(timed(forward_training, params, X))
+        times["optimizer_step"].append(timed(step, *step_args))
         for k, fn in parts.items():
             part_times[k].append(timed(fn))
+    medians = {k: statistics.median(v) for k, v in times.items()}
     part_medians = {k + "_s": statistics.median(v) for k, v in part_times.items()}
     # a step needs at least: circuit forward + a reverse pass (>= one more forward),
     # herk forward and the N x N x 2^n backward product
@@ -166,6 +171,18 @@ def main(argv=None):
         "ratio_floor_if_circuit_cost_nothing": (
             (part_medians["host_overlap_herk_s"] + part_medians["backward_three_real_products_s"])
             / part_medians["host_overlap_herk_s"]),
+        # the products in units of one real float32 product of the backward's shape
+        # (N x N by N x 2^n): herk does the work of two, the backward of three
+        "herk_in_real_products": (part_medians["host_overlap_herk_s"]
+                                  / part_medians["one_real_product_s"]),
+        "backward_in_real_products": (part_medians["backward_three_real_products_s"]
+                                      / part_medians["one_real_product_s"]),
+        # the step if it were nothing but herk, the backward product and the circuit's
+        # forward and reverse passes (no elementwise work, no callback, no objective)
+        "ratio_if_only_products_and_circuit": statistics.median(
+            (h + b + c) / f for h, b, c, f in zip(
+                part_times["host_overlap_herk"], part_times["backward_three_real_products"],
+                part_times["circuit_forward_and_reverse"], times["forward"])),
         "ratio_chunked_to_unchunked_circuit_forward_and_reverse": (
             part_medians["circuit_forward_and_reverse_s"]
             / part_medians["circuit_forward_and_reverse_unchunked_s"]),

@@ -297,6 +297,21 @@ def test_chunked_states_equal_unchunked(rng):
         circuits.encode_states(bp, params, X, chunk_size=0)
 
 
+@pytest.mark.parametrize("n_samples", [1, 255, 256, 2000, 2001, 4097])
+def test_automatic_chunks_are_balanced_and_cover_every_row(n_samples):
+    # 12 qubits of complex64: 32 KiB a row, so at most 128 rows per 4 MiB chunk
+    rows = circuits.automatic_chunk(n_samples, 12)
+    chunks = -(-n_samples // rows)
+    if n_samples < 256:
+        assert rows == n_samples
+    else:
+        assert rows <= circuits.CACHE_CHUNK_BYTES // 2**15
+        assert chunks * rows - n_samples < chunks  # padding: less than one row per chunk
+    assert chunks * rows >= n_samples
+    if n_samples == 2000:
+        assert rows == 125  # 16 chunks of 125 rows: no padding at all
+
+
 def test_complex128_needs_x64_mode():
     bp = _angle_bp()
     if jax.config.jax_enable_x64:

@@ -44,8 +44,11 @@ def test_training_benchmark_runs():
     assert set(report["step_parts"]) == {
         "circuit_forward_s", "circuit_forward_and_reverse_s", "circuit_forward_unchunked_s",
         "circuit_forward_and_reverse_unchunked_s", "host_overlap_herk_s",
-        "backward_three_real_products_s", "reference_host_cgemm_s"}
+        "backward_three_real_products_s", "reference_host_cgemm_s", "one_real_product_s"}
     assert report["ratio_floor_if_circuit_cost_nothing"] > 1
+    assert report["ratio_if_only_products_and_circuit"] > 1
+    # --quick products are too small for their relative cost to mean anything: only sanity
+    assert report["backward_in_real_products"] > 0 and report["herk_in_real_products"] > 0
 
 
 def test_scaling_and_accuracy_studies_run_and_write_their_results(tmp_path):

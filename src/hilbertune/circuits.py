@@ -491,11 +491,20 @@ CACHE_CHUNK_BYTES = 4 * 2**20
 
 
 def automatic_chunk(n_samples: int, n_qubits: int, dtype=jnp.complex64) -> int:
-    """Rows per chunk for ``encode_states``: about CACHE_CHUNK_BYTES of states, or all
-    rows when there are fewer than two chunks' worth."""
+    """Rows per chunk for ``encode_states``: at most about CACHE_CHUNK_BYTES of states, or
+    all rows when there are fewer than two chunks' worth.
+
+    The chunks are balanced: ``ceil(N / chunks)`` rows each, so at most ``chunks - 1``
+    rows are padding, and none when the chunk count divides N (2000 rows of 12 qubits: 16
+    chunks of 125 rows, where 128-row chunks would pad to 2048 and then copy the 2000
+    real rows out of the padded result).
+    """
     row_bytes = (2**n_qubits) * jnp.dtype(dtype).itemsize
     rows = max(1, CACHE_CHUNK_BYTES // row_bytes)
-    return n_samples if n_samples < 2 * rows else rows
+    if n_samples < 2 * rows:
+        return n_samples
+    chunks = -(-n_samples // rows)
+    return -(-n_samples // chunks)
 
 
 def check_dtype(dtype):
