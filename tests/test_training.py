@@ -223,8 +223,7 @@ def test_planar_matmul_matches_numpy_complex_product():
 
 def test_host_blas_gram_path_matches_xla_and_is_repeatable():
     # the large-problem path (BLAS herk forward via pure_callback, backward as three real
-    # products) against
-    # the in-graph path and plain autodiff of |S S^H|^2
+    # products) against the in-graph path and plain autodiff of |S S^H|^2
     from hilbertune.training import _fidelity_in_xla, _fidelity_on_host
 
     rng = np.random.default_rng(4)
@@ -238,6 +237,7 @@ def test_host_blas_gram_path_matches_xla_and_is_repeatable():
         return jnp.real(overlap) ** 2 + jnp.imag(overlap) ** 2
 
     results = {}
+
     def complex_input(fidelity):
         return lambda real, imag: fidelity(jax.lax.complex(real, imag))
 
