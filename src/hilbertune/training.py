@@ -35,11 +35,13 @@ from hilbertune import artifacts
 from hilbertune.circuits import (PARAM_NAMES, Blueprint, compile_blueprint, encode_states,
                                  initial_params, is_product, validate_features)
 from hilbertune.errors import ArtifactError, InvalidInputError, ResourceLimitError, TrainingError
-from hilbertune.kernels import gram_for_training, herk_upper, resolve_memory_budget
+from hilbertune.kernels import (encoding_expectations, gram_for_training, herk_upper,
+                                projected_gram_from_expectations, resolve_memory_budget)
 from hilbertune import objectives
 
 OPTIMIZERS = ("adam", "sgd", "rmsprop", "adamw")
 SCHEDULES = ("constant", "cosine", "warmup_cosine")
+KERNELS = ("fidelity", "projected")
 CHECKPOINT_NPZ = "checkpoint.npz"
 CHECKPOINT_JSON = "checkpoint.json"
 CHECKPOINT_FORMAT = 1
@@ -66,6 +68,9 @@ class TrainingSettings(NamedTuple):
     bias_scale: float = 0.0  # initial biases ~ N(0, bias_scale^2)
     weight_decay: float = 1e-4  # decoupled weight decay of "adamw"
     min_improvement: float = 1e-6  # a validation loss must drop by more than this to count
+    kernel: str = "fidelity"  # the kernel that is trained: "fidelity" or "projected"
+    gamma: float = 1.0  # bandwidth of the projected kernel (kernel == "projected")
+    bandwidth_range: float = 0.0  # keep c within [c0 / r, c0 * r] of its start c0; 0 = unbounded
 
 
 class TrainingResult(NamedTuple):
@@ -78,6 +83,7 @@ class TrainingResult(NamedTuple):
     best_step: int  # step whose parameters are ``params``
     classes: np.ndarray  # label values; class k of the objective is classes[k]
     initial_bandwidth: float  # c = exp(log_bandwidth) before training
+    snapshots: dict = {}  # step s -> best parameters among steps 0..s (``snapshots=`` argument)
 
 
 class _StaticConfig(NamedTuple):
@@ -98,6 +104,9 @@ class _StaticConfig(NamedTuple):
     batch_counts: tuple | None  # samples per class in a mini-batch; None = full batch
     validation: bool
     quick_compile: bool  # small problem: compile fast rather than optimize (see below)
+    kernel: str = "fidelity"  # "fidelity" or "projected"
+    gamma: float = 1.0  # projected-kernel bandwidth
+    log_bandwidth_bound: float = -1.0  # |log c - log c0| <= this after each update; < 0: none
 
 
 # --------------------------------------------------------------------------- validation
@@ -151,6 +160,16 @@ def check_settings(settings: TrainingSettings, blueprint: Blueprint | None = Non
     number("bias_scale", 0.0)
     number("weight_decay", 0.0)
     number("min_improvement", 0.0)
+    number("gamma", 0.0, strict=True)
+    if settings.kernel not in KERNELS:
+        raise InvalidInputError(f"unknown kernel {settings.kernel!r}"
+                                f"{_closest(settings.kernel, KERNELS)}; use one of "
+                                f"{', '.join(KERNELS)}")
+    value = settings.bandwidth_range
+    if not (isinstance(value, (int, float, np.number)) and math.isfinite(value)
+            and (value == 0 or value >= 1)):
+        raise InvalidInputError(f"bandwidth_range must be 0 (unbounded) or a factor >= 1, got "
+                                f"{value!r}")
     if settings.bandwidth is not None:
         number("bandwidth", 0.0, strict=True)
     freeze = settings.freeze
@@ -475,9 +494,19 @@ def symmetric_fidelity_gram(states):
     return fidelity(states)
 
 
-def training_gram(blueprint: Blueprint, params: dict, X):
-    """Differentiable train Gram [N, N]: the closed form for product encodings
-    (``kernels.gram_for_training``), otherwise states and ``symmetric_fidelity_gram``."""
+def training_gram(blueprint: Blueprint, params: dict, X, *, kernel: str = "fidelity",
+                  gamma: float = 1.0):
+    """Differentiable train Gram [N, N] of the kernel that the SVM will use.
+
+    ``kernel="fidelity"``: the closed form for product encodings
+    (``kernels.gram_for_training``), otherwise states and ``symmetric_fidelity_gram``.
+    ``kernel="projected"``: the projected quantum kernel from the per-qubit Pauli
+    expectations (``kernels.encoding_expectations``, differentiable), so training optimizes
+    the same Gram that ``kernels.projected_gram`` gives the SVM.
+    """
+    if kernel == "projected":
+        expectations = encoding_expectations(blueprint, params, X)
+        return projected_gram_from_expectations(expectations, expectations, gamma)
     if is_product(blueprint) or blueprint.state_kind != "gates":
         return gram_for_training(blueprint, params, X)
     return symmetric_fidelity_gram(encode_states(blueprint, params, X))
@@ -495,7 +524,7 @@ def training_loss_function(blueprint: Blueprint, config: _StaticConfig):
         params = {**fixed, **trainable}
         mask = y_padded >= 0
         y_int = jnp.maximum(y_padded, 0)
-        gram = training_gram(blueprint, params, X)
+        gram = training_gram(blueprint, params, X, kernel=config.kernel, gamma=config.gamma)
         value = objective(gram, y_int, config.n_classes, config.ridge_lambda, config.folds,
                           mask)
         penalty = (objectives.weight_penalty(trainable, reference, config.l2_penalty)
@@ -528,13 +557,20 @@ def _compiled_step(blueprint: Blueprint, config: _StaticConfig):
         grad_norm = optax.tree.norm(grads)
         if config.validation:
             params = {**fixed, **trainable}
-            gram_val = training_gram(blueprint, params, X_val)
+            gram_val = training_gram(blueprint, params, X_val, kernel=config.kernel,
+                                     gamma=config.gamma)
             validation = objective(gram_val, jnp.maximum(y_val, 0), config.n_classes,
                                    config.ridge_lambda, config.validation_folds, y_val >= 0)
         else:
             validation = jnp.full((), jnp.nan, jnp.float32)
         updates, new_state = optimizer.update(grads, opt_state, trainable)
         new_trainable = optax.apply_updates(trainable, updates)
+        if config.log_bandwidth_bound >= 0 and "log_bandwidth" in new_trainable:
+            # projection onto the allowed bandwidth interval around the start
+            start = reference["log_bandwidth"]
+            new_trainable["log_bandwidth"] = jnp.clip(new_trainable["log_bandwidth"],
+                                                      start - config.log_bandwidth_bound,
+                                                      start + config.log_bandwidth_bound)
         return new_trainable, new_state, metrics + (grad_norm, validation)
 
     options = quick_compile_options() if config.quick_compile else None
@@ -543,8 +579,9 @@ def _compiled_step(blueprint: Blueprint, config: _StaticConfig):
 
 # --------------------------------------------------------------------------- checkpoints
 
-def _fingerprint(blueprint, settings, seed, X, y_int, classes, start_params):
+def _fingerprint(blueprint, settings, seed, X, y_int, classes, start_params, snapshots=()):
     digest = hashlib.sha256()
+    digest.update(repr(tuple(snapshots)).encode())
     digest.update(repr(blueprint).encode())
     digest.update(repr(settings._replace(checkpoint_every=0)).encode())
     digest.update(str(int(seed)).encode())
@@ -564,6 +601,9 @@ def _save_checkpoint(directory, *, fingerprint, seed, objective, state, opt_stat
     for group in ("params", "best", "initial"):
         for name, value in state[group].items():
             arrays[f"{group}/{name}"] = np.asarray(value)
+    for step, values in state["snapshots"].items():
+        for name, value in values.items():
+            arrays[f"snapshot{step}/{name}"] = np.asarray(value)
     for i, leaf in enumerate(jax.tree_util.tree_leaves(opt_state)):
         arrays[f"opt/{i:04d}"] = np.asarray(leaf)
     meta = {key: state[key] for key in ("next_step", "best_step", "best_loss", "since_best",
@@ -607,6 +647,11 @@ def _load_checkpoint(directory, fingerprint, opt_template):
     for group in ("params", "best", "initial"):
         state[group] = {key.split("/", 1)[1]: value for key, value in arrays.items()
                         if key.startswith(group + "/")}
+    state["snapshots"] = {}
+    for key, value in arrays.items():
+        if key.startswith("snapshot"):
+            group, name = key.split("/", 1)
+            state["snapshots"].setdefault(int(group[len("snapshot"):]), {})[name] = value
     leaves, treedef = jax.tree_util.tree_flatten(opt_template)
     stored = [arrays[f"opt/{i:04d}"] for i in range(len(leaves))]
     opt_state = jax.tree_util.tree_unflatten(
@@ -634,7 +679,8 @@ def _progress_bar(enabled, total):
 def train_encoding(blueprint: Blueprint, X, y, settings: TrainingSettings = TrainingSettings(),
                    *, seed: int, params: dict | None = None, checkpoint_dir: str | None = None,
                    progress: bool = False, resume: bool = True,
-                   pause_after: int | None = None, memory_budget=None) -> TrainingResult:
+                   pause_after: int | None = None, memory_budget=None,
+                   snapshots=()) -> TrainingResult:
     """Learn the encoding's weights, biases and bandwidth on labelled data.
 
     Args:
@@ -652,6 +698,9 @@ def train_encoding(blueprint: Blueprint, X, y, settings: TrainingSettings = Trai
         again with the same arguments continues.
       memory_budget: bytes or a string such as "4GiB" (None: half the memory, at most 8 GiB);
         a step whose estimate (``training_memory_bytes``) exceeds it is refused up front.
+      snapshots: step counts s; ``result.snapshots[s]`` holds the parameters that training
+        stopped at step s would have returned (the best ones among steps 0..s; the final
+        best ones when the loop ended earlier). Points of the trajectory for selection.
 
     Returns:
       ``TrainingResult``. ``history[t]`` describes the parameters after t updates: ``step``,
@@ -695,14 +744,7 @@ def train_encoding(blueprint: Blueprint, X, y, settings: TrainingSettings = Trai
     init_key, batch_key = jax.random.split(root)
     frozen_names = set(blueprint.frozen) | set(settings.freeze)
     if params is None:
-        if settings.bandwidth is not None:
-            bandwidth = float(settings.bandwidth)
-        elif "log_bandwidth" in frozen_names:
-            bandwidth = 1.0  # a frozen bandwidth keeps the family's scale (e.g. basis encoding)
-        else:
-            bandwidth = median_heuristic_bandwidth(X_train, rng)
-        start = initial_params(blueprint, init_key, bandwidth=bandwidth,
-                               bias_scale=settings.bias_scale)
+        start = _default_start(blueprint, settings, X_train, rng, init_key)
     else:
         missing = [name for name in PARAM_NAMES if name not in params]
         if missing:
@@ -723,18 +765,24 @@ def train_encoding(blueprint: Blueprint, X, y, settings: TrainingSettings = Trai
                            float(settings.clip_norm),
                            float(settings.weight_decay), batch_counts, validation,
                            quick_compile(max(X_train.shape[0], X_val.shape[0]),
-                                         blueprint.n_qubits))
+                                         blueprint.n_qubits),
+                           settings.kernel, float(settings.gamma),
+                           math.log(settings.bandwidth_range) if settings.bandwidth_range
+                           else -1.0)
     step_fn, optimizer, schedule = _compiled_step(blueprint, config)
 
     fixed = {n: jnp.asarray(v) for n, v in start_np.items() if n not in trainable_names}
     reference = {n: jnp.asarray(start_np[n]) for n in trainable_names}
     trainable = dict(reference)
     opt_state = optimizer.init(trainable)
+    snapshots = tuple(sorted({int(s) for s in snapshots}))
+    if any(s < 0 for s in snapshots):
+        raise InvalidInputError(f"snapshots must be step counts >= 0, got {snapshots!r}")
     fingerprint = _fingerprint(blueprint, settings, seed, X, y_int, classes,
-                               None if params is None else start_np)
+                               None if params is None else start_np, snapshots)
     state = {"next_step": 0, "best_step": 0, "best_loss": None, "since_best": 0,
              "history": [], "stop_reason": None, "elapsed": 0.0, "params": start_np,
-             "best": start_np, "initial": start_np, "batch_key": batch_key,
+             "best": start_np, "initial": start_np, "batch_key": batch_key, "snapshots": {},
              "initial_bandwidth": float(math.exp(float(start_np["log_bandwidth"])))}
     if checkpoint_dir is not None and resume:
         loaded = _load_checkpoint(checkpoint_dir, fingerprint, opt_state)
@@ -743,9 +791,10 @@ def train_encoding(blueprint: Blueprint, X, y, settings: TrainingSettings = Trai
             trainable = {n: jnp.asarray(state["params"][n]) for n in trainable_names}
 
     def result():
+        taken = {s: state["snapshots"].get(s, state["best"]) for s in snapshots}
         return TrainingResult(state["best"], state["initial"], state["history"],
                               state["stop_reason"], state["best_step"], classes,
-                              state["initial_bandwidth"])
+                              state["initial_bandwidth"], taken)
 
     if state["stop_reason"] is not None:  # the checkpoint holds a finished run
         return result()
@@ -800,6 +849,8 @@ def train_encoding(blueprint: Blueprint, X, y, settings: TrainingSettings = Trai
                 state["since_best"] = 0
             else:
                 state["since_best"] += 1
+            if t in snapshots:
+                state["snapshots"][t] = state["best"]
             calls += 1
             if bar is not None:
                 bar.update(bar.task_ids[0], advance=1,
@@ -837,6 +888,35 @@ def train_encoding(blueprint: Blueprint, X, y, settings: TrainingSettings = Trai
     return result()
 
 
+def _default_start(blueprint, settings, X_train, rng, init_key):
+    frozen_names = set(blueprint.frozen) | set(settings.freeze)
+    if settings.bandwidth is not None:
+        bandwidth = float(settings.bandwidth)
+    elif "log_bandwidth" in frozen_names:
+        bandwidth = 1.0  # a frozen bandwidth keeps the family's scale (e.g. basis encoding)
+    else:
+        bandwidth = median_heuristic_bandwidth(X_train, rng)
+    return initial_params(blueprint, init_key, bandwidth=bandwidth,
+                          bias_scale=settings.bias_scale)
+
+
+def starting_params(blueprint: Blueprint, X, y, settings: TrainingSettings = TrainingSettings(),
+                    *, seed: int) -> dict:
+    """The parameters ``train_encoding(blueprint, X, y, settings, seed=seed)`` starts from
+    (same split, same bandwidth heuristic, same random biases), as numpy arrays.
+
+    This is the untrained encoding of a run: the kernel that selection always keeps as a
+    candidate.
+    """
+    check_settings(settings, blueprint)
+    X = validate_features(blueprint, X)
+    _, y_int = encode_labels(y, X.shape[0])
+    rng = np.random.default_rng(int(seed))
+    train_idx, _ = stratified_split(y_int, settings.validation_fraction, rng)
+    init_key, _ = jax.random.split(jax.random.key(int(seed)))
+    return _numpy_params(_default_start(blueprint, settings, X[train_idx], rng, init_key))
+
+
 def _evaluate_only(blueprint, config, params, args, validation):
     """History entry for an encoding without trainable parameters."""
     started = time.perf_counter()
@@ -845,7 +925,8 @@ def _evaluate_only(blueprint, config, params, args, validation):
 
     def evaluate(params, X, y, X_val, y_val):
         _, metrics = loss({}, params, {}, X, y)
-        gram = training_gram(blueprint, params, X_val)
+        gram = training_gram(blueprint, params, X_val, kernel=config.kernel,
+                             gamma=config.gamma)
         return metrics + (objective_fn(gram, jnp.maximum(y_val, 0), config.n_classes,
                                        config.ridge_lambda, config.validation_folds,
                                        y_val >= 0),)
