@@ -8,8 +8,8 @@ one untimed warm-up call that pays for XLA compilation):
    against one bare complex64 matrix product of the same shapes ([2000, 4096] x
    [4096, 2000]) in numpy and in jax.numpy; the faster bare product is the baseline.
    Target: ratio <= 1.3.
-2. the same kind of Gram (10 qubits, 1000 samples) against simulating the compute-uncompute
-   circuit per pair (``kernels.compute_uncompute_probability``, jit-compiled and batched over
+2. the same kind of Gram (10 qubits, 1000 samples) against simulating the inversion-test
+   circuit per pair (``kernels.inversion_test_probability``, jit-compiled and batched over
    pairs, which favours the per-pair path); its time on a subsample of pairs is extrapolated
    linearly to all N (N - 1) / 2 pairs. Target: speed-up >= 500. For information, also one
    jit-compiled call per pair (batch of one), extrapolated the same way.
@@ -114,7 +114,7 @@ def bench_per_pair(cfg, repeats, rng):
     xa = jnp.asarray(X[i], jnp.float32)
     xb = jnp.asarray(X[j], jnp.float32)
     batch = cfg["pair_batch"]
-    per_pair = jax.jit(kernels.compute_uncompute_probability, static_argnums=0)
+    per_pair = jax.jit(kernels.inversion_test_probability, static_argnums=0)
 
     def run_pairs():
         return [per_pair(bp, params, xa[s:s + batch], xb[s:s + batch])
@@ -142,7 +142,7 @@ def bench_per_pair(cfg, repeats, rng):
     return {
         "n_qubits": n, "n_samples": m, "layers": cfg["layers"],
         "timings": timings,
-        "per_pair_method": (f"compute_uncompute_probability, jit-compiled, batches of {batch} "
+        "per_pair_method": (f"inversion_test_probability, jit-compiled, batches of {batch} "
                             f"pairs; timed on {n_pairs} random pairs and extrapolated "
                             f"linearly to N(N-1)/2 = {all_pairs} pairs"),
         "per_pair_extrapolated_s": per_pair_total,

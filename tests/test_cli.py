@@ -212,6 +212,56 @@ def test_unknown_target_and_config_key_suggest_the_fix(small_csv, tmp_path, caps
     assert code == 2 and "did you mean 'training.steps'" in err
 
 
+@pytest.mark.parametrize("setting, toml, fragment", [
+    ("encoding.reps=2", "[encoding]\nreps = 2\n", "renamed to 'encoding.layers'"),
+    ("hardware.estimator=compute_uncompute", '[hardware]\nestimator = "compute_uncompute"\n',
+     "renamed to 'inversion_test'"),
+])
+def test_retired_config_names_exit_2_with_the_new_name(tmp_path, capsys, setting, toml,
+                                                       fragment):
+    config = tmp_path / "old.toml"
+    config.write_text(toml)
+    for args in (["--set", setting], [config]):
+        code, _, err = run(["fit", *args, "--out", tmp_path / "o"], capsys)
+        assert code == 2 and fragment in err, err
+        assert len(err.strip().splitlines()) == 1 and "Traceback" not in err
+    assert not (tmp_path / "o").exists()
+
+
+def test_reproduce_maps_old_names_of_an_older_run(fitted_run, tmp_path, capsys):
+    import shutil
+
+    from hilbertune import artifacts
+
+    old = tmp_path / "old"
+    shutil.copytree(fitted_run, old)
+    text = (old / "config.toml").read_text()
+    assert 'estimator = "inversion_test"' in text and "\nlayers = 2\n" in text
+    # the config.toml an older version wrote: both counts, the old estimator name
+    text = text.replace('estimator = "inversion_test"', 'estimator = "compute_uncompute"')
+    (old / "config.toml").write_text(text.replace("\nlayers = 2\n", "\nlayers = 2\nreps = 2\n"))
+    manifest = json.loads((old / "manifest.json").read_text())
+    manifest["artifacts"]["config.toml"] = artifacts.sha256_file(old / "config.toml")
+    (old / "manifest.json").write_text(json.dumps(manifest))
+    code, out, err = run(["reproduce", old, "--json"], capsys)
+    assert code == 0, err
+    result = json.loads(out)
+    assert result["identical"] and result["mapped_names"] == [
+        "dropped old name encoding.reps (unused by the 'layered' encoding)",
+        "mapped old name hardware.estimator = 'compute_uncompute' to 'inversion_test'"]
+    code, out, err = run(["reproduce", old], capsys)
+    assert code == 0 and "note: mapped old name hardware.estimator" in out, err
+
+
+def test_old_iqp_repetitions_map_to_layers():
+    from hilbertune.runs import _map_retired_names
+
+    user = {"encoding": {"family": "iqp", "layers": 2, "reps": 3}}
+    assert _map_retired_names(user) == ["mapped old name encoding.reps to encoding.layers"]
+    assert user == {"encoding": {"family": "iqp", "layers": 3}}
+    assert _map_retired_names({"encoding": {"family": "iqp", "layers": 2}}) == []
+
+
 @pytest.mark.parametrize("setting, fragment", [
     ("training.steps=0", "positive"),
     ("training.learning_rate=-1", "positive"),

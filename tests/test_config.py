@@ -73,3 +73,22 @@ def test_shots_grid_and_freeze_are_checked():
         cfg.resolve_config(overrides=[("hardware.shots_grid", [10, 0])])
     with pytest.raises(InvalidInputError, match="freeze"):
         cfg.resolve_config(overrides=[("training.freeze", ["weigths"])])
+
+
+@pytest.mark.parametrize("user, overrides, fragment", [
+    ({"encoding": {"reps": 2}}, (), "renamed to 'encoding.layers'"),
+    (None, [("encoding.reps", 3)], "renamed to 'encoding.layers'"),
+    ({"hardware": {"estimator": "compute_uncompute"}}, (), "renamed to 'inversion_test'"),
+    (None, [("hardware.estimator", "compute_uncompute")], "renamed to 'inversion_test'"),
+])
+def test_retired_names_are_refused_with_the_new_name(user, overrides, fragment):
+    with pytest.raises(InvalidInputError, match=fragment):
+        cfg.resolve_config(user, overrides)
+
+
+def test_layers_serves_the_iqp_family_and_help_says_so():
+    config = cfg.resolve_config(overrides=[("encoding.family", "iqp"), ("encoding.layers", 3)])
+    assert config["encoding"]["layers"] == 3 and "reps" not in config["encoding"]
+    assert config["hardware"]["estimator"] == "inversion_test"
+    assert "encoding.layers = 2 (positive): repeated blocks of the layered and iqp" \
+        in cfg.describe()

@@ -113,10 +113,10 @@ def test_basis_rejects_non_binary(bad):
 
 # --------------------------------------------------------------------------- IQP-style
 
-@pytest.mark.parametrize("pairs, reps", [("all", 2), ("linear", 1), ("ring", 2)])
-def test_iqp_style_equals_havlicek_formula(pairs, reps, dense, rng):
+@pytest.mark.parametrize("pairs, layers", [("all", 2), ("linear", 1), ("ring", 2)])
+def test_iqp_style_equals_havlicek_formula(pairs, layers, dense, rng):
     n, c = 3, 0.8
-    bp = encodings.iqp_style(n, reps=reps, pairs=pairs)
+    bp = encodings.iqp_style(n, layers=layers, pairs=pairs)
     params = circuits.initial_params(bp, bandwidth=c)
     X = rng.uniform(-2, 2, size=(3, n))
     got = np.asarray(circuits.encode_states(bp, params, X))
@@ -126,7 +126,7 @@ def test_iqp_style_equals_havlicek_formula(pairs, reps, dense, rng):
     for b in range(3):
         xs = c * X[b]
         # U_Phi(x) = exp(i sum_i phi_i Z_i + i sum_(i,j) phi_ij Z_i Z_j), phi_i = x_i,
-        # phi_ij = (pi - x_i)(pi - x_j); state (U_Phi H^n)^reps |0> (Havlicek et al., Nature
+        # phi_ij = (pi - x_i)(pi - x_j); state (U_Phi H^n)^layers |0> (Havlicek et al., Nature
         # 567, 209 (2019), Eq. 2 and the feature map below it); matrix exponential by scipy
         generator = sum(xs[i] * dense.embed({i: dense.Z}, n) for i in range(n))
         generator = generator + sum((math.pi - xs[i]) * (math.pi - xs[j]) *
@@ -134,16 +134,16 @@ def test_iqp_style_equals_havlicek_formula(pairs, reps, dense, rng):
                                     for i, j in pair_list)
         u_phi = scipy.linalg.expm(1j * generator)
         state = np.eye(2**n)[:, 0].astype(complex)
-        for _ in range(reps):
+        for _ in range(layers):
             state = u_phi @ (hadamards @ state)
         np.testing.assert_allclose(got[b], state, atol=2e-5)
 
 
 def test_iqp_style_counts():
-    bp = encodings.iqp_style(4, reps=2, pairs="linear")
+    bp = encodings.iqp_style(4, layers=2, pairs="linear")
     counts = circuits.resource_counts(bp)
-    assert counts["two_qubit_gates"] == 2 * 3  # reps * (n - 1) ZZ on a line
-    assert counts["one_qubit_gates"] == 2 * (4 + 4)  # reps * (H + RZ per qubit)
+    assert counts["two_qubit_gates"] == 2 * 3  # layers * (n - 1) ZZ on a line
+    assert counts["one_qubit_gates"] == 2 * (4 + 4)  # layers * (H + RZ per qubit)
     assert not circuits.is_product(bp)
 
 

@@ -2,7 +2,7 @@
 
 The speed figures themselves are not asserted (machines are shared and noisy); what is
 checked is that each script prints its JSON, that the Gram and the per-pair
-compute-uncompute path give the same kernel entries, and that every ratio is a positive
+inversion-test path give the same kernel entries, and that every ratio is a positive
 number.
 """
 

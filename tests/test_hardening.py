@@ -606,7 +606,7 @@ def test_float32_and_float64_grams_agree():
     X = rng.uniform(0, math.pi, size=(6, 3))
     # complex64 round-off: ~1e-7 per operation, a few dozen gates (common practice)
     for bp, projected in ((build_encoding("layered", 3, layers=2, entangler="ring"), True),
-                          (build_encoding("iqp", 3, reps=2), False)):
+                          (build_encoding("iqp", 3, layers=2), False)):
         params = initial_params(bp, jax.random.key(1), bandwidth=0.8, bias_scale=0.3)
         single = np.asarray(quantum_gram(bp, params, X), np.float64)
         with jax.enable_x64(True):
@@ -653,7 +653,7 @@ def test_gradient_of_the_alignment_is_finite_at_extreme_bandwidths():
     from hilbertune.encodings import build_encoding
     from hilbertune.kernels import gram_for_training
 
-    bp = build_encoding("iqp", 2, reps=1)
+    bp = build_encoding("iqp", 2, layers=1)
     X = jnp.asarray(np.random.default_rng(1).uniform(0, math.pi, (8, 2)), jnp.float32)
     y = jnp.asarray([0, 1] * 4)
     mask = jnp.ones(8, bool)

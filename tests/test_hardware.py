@@ -62,10 +62,10 @@ def _chi_square_p_value(counts, shots, p):
 # --------------------------------------------------------------------------- shot statistics
 
 @pytest.mark.parametrize("k", [0.05, 0.3, 0.5, 0.92])
-def test_compute_uncompute_counts_are_binomial(k):
+def test_inversion_test_counts_are_binomial(k):
     shots = 40
     K = np.full((120, 150), k)
-    est = hw.shot_sampled_gram(K, shots, estimator="compute_uncompute", seed=11)
+    est = hw.shot_sampled_gram(K, shots, estimator="inversion_test", seed=11)
     samples = est.ravel()
     # mean k and variance k(1-k)/shots (binomial, scipy.stats.binom)
     sigma2 = scipy.stats.binom.var(shots, k) / shots**2
@@ -129,7 +129,7 @@ def test_hadamard_test_estimate_is_unbiased_with_the_stated_variance():
 
 
 def _tiny_encoding():
-    bp = build_encoding("iqp", 3, reps=1)
+    bp = build_encoding("iqp", 3, layers=1)
     rng = np.random.default_rng(7)
     params = initial_params(bp, bandwidth=0.8)
     return bp, params, rng.uniform(-1.0, 1.0, size=(5, 3))
@@ -385,7 +385,7 @@ def test_local_channels_match_an_independent_dense_simulation(dense, rng):
         assert got[i, j] == pytest.approx(ref, abs=2e-6)
 
 
-@pytest.mark.parametrize("family, options", [("iqp", {"reps": 2}),
+@pytest.mark.parametrize("family, options", [("iqp", {"layers": 2}),
                                              ("layered", {"layers": 2, "entangler_gate": "cnot"})])
 def test_zero_error_density_matrix_equals_statevector_kernel(family, options, rng):
     bp = build_encoding(family, 3, **options)
@@ -412,8 +412,8 @@ def test_per_gate_global_channels_compose_to_the_gate_count_formula():
     bp, params, X = _tiny_encoding()
     K = np.asarray(quantum_gram(bp, params, X), dtype=float)
     e1, e2 = 0.01, 0.04
-    p = hw.compute_uncompute_depolarizing(bp, one_qubit_error=e1, two_qubit_error=e2)
-    counts = bp.n_qubits * 2, 3  # 3 Hadamards + 3 RZ, 3 ZZ per layer (iqp, reps=1)
+    p = hw.inversion_test_depolarizing(bp, one_qubit_error=e1, two_qubit_error=e2)
+    counts = bp.n_qubits * 2, 3  # 3 Hadamards + 3 RZ, 3 ZZ per layer (iqp, layers=1)
     assert p == pytest.approx(1 - (1 - e1) ** (2 * counts[0]) * (1 - e2) ** (2 * counts[1]))
     got = hw.density_matrix_kernel(bp, params, X, one_qubit_error=e1, two_qubit_error=e2,
                                    channel="global")
@@ -432,7 +432,7 @@ def test_single_qubit_local_noise_is_global():
     params = initial_params(bp)
     X = np.linspace(-2, 2, 4)[:, None]
     K = np.asarray(quantum_gram(bp, params, X), dtype=float)
-    p = hw.compute_uncompute_depolarizing(bp, one_qubit_error=0.05, two_qubit_error=0.5)
+    p = hw.inversion_test_depolarizing(bp, one_qubit_error=0.05, two_qubit_error=0.5)
     assert p == pytest.approx(1 - 0.95**6)
     got = hw.density_matrix_kernel(bp, params, X, one_qubit_error=0.05, two_qubit_error=0.5)
     np.testing.assert_allclose(got, (1 - p) * K + p / 2, atol=2e-6)
@@ -443,7 +443,7 @@ def test_depolarizing_probability_limits():
     assert hw.depolarizing_from_gates(1, 0, one_qubit_error=1.0, two_qubit_error=0.0) == 1.0
     assert hw.depolarizing_from_gates(0, 0, one_qubit_error=0.3, two_qubit_error=0.3) == 0.0
     with pytest.raises(InvalidInputError, match="amplitude"):
-        hw.compute_uncompute_depolarizing(build_encoding("amplitude", 4), one_qubit_error=0.1,
+        hw.inversion_test_depolarizing(build_encoding("amplitude", 4), one_qubit_error=0.1,
                                           two_qubit_error=0.1)
 
 
@@ -471,7 +471,7 @@ def iris_kernels():
     train, test = order[:24], order[24:44]
     mean, std = X[train].mean(0), X[train].std(0)
     X = (X - mean) / std
-    bp = build_encoding("iqp", 4, reps=1)
+    bp = build_encoding("iqp", 4, layers=1)
     params = initial_params(bp, bandwidth=0.5)
     K_train = np.asarray(quantum_gram(bp, params, X[train]), dtype=float)
     K_test = np.asarray(quantum_gram(bp, params, X[test], X[train]), dtype=float)
@@ -519,7 +519,7 @@ def test_analytic_shots_follow_the_variance_rule(iris_kernels):
     k = K_train[rows, cols]
     target = 0.2 * k.std()
     s = result["analytic_shots"]
-    # compute-uncompute: rms std = sqrt(mean k (1 - k) / s)  (binomial)
+    # inversion test: rms std = sqrt(mean k (1 - k) / s)  (binomial)
     assert math.sqrt(np.mean(k * (1 - k)) / s) <= target
     assert math.sqrt(np.mean(k * (1 - k)) / (s - 1)) > target
     assert result["total_executions"]["analytic"] == (len(k) + K_test.size) * s

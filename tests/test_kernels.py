@@ -63,16 +63,16 @@ def test_hadamard_test_rejects_bad_part_and_amplitude_encoding():
 
 
 @pytest.mark.parametrize("family", ["layered", "iqp"])
-def test_compute_uncompute_equals_fidelity_gram(family, dense, rng):
+def test_inversion_test_equals_fidelity_gram(family, dense, rng):
     bp = encodings.build_encoding(family, 3)
     params = dense.random_params(bp, rng)
     X = rng.uniform(-2, 2, size=(5, 3))
     gram = np.asarray(kernels.quantum_gram(bp, params, X))
     i, j = np.triu_indices(5, k=1)
-    per_pair = np.asarray(kernels.compute_uncompute_probability(bp, params, X[i], X[j]))
+    per_pair = np.asarray(kernels.inversion_test_probability(bp, params, X[i], X[j]))
     # |<0|U(x')^+ U(x)|0>|^2 = |<psi(x')|psi(x)>|^2 (definition of the fidelity kernel)
     np.testing.assert_allclose(per_pair, gram[i, j], atol=2e-5)
-    same = np.asarray(kernels.compute_uncompute_probability(bp, params, X, X))
+    same = np.asarray(kernels.inversion_test_probability(bp, params, X, X))
     np.testing.assert_allclose(same, 1.0, atol=2e-5)
 
 
@@ -150,7 +150,7 @@ def test_exponential_concentration_of_product_ry(n, method, rng):
 GRAM_CASES = [
     ("layered", {"layers": 2}),
     ("layered", {"layers": 1, "entangler_gate": "cnot", "entangler": "all"}),
-    ("iqp", {"reps": 2}),
+    ("iqp", {"layers": 2}),
     ("angle", {}),
     ("amplitude", {}),
 ]

@@ -217,7 +217,7 @@ def test_preprocessing_from_arrays_accepts_consistent_arrays_only(shapes, reduce
 
 family_options = {
     "angle": st.fixed_dictionaries({"axis": st.sampled_from(["x", "y", "z", "w"])}),
-    "iqp": st.fixed_dictionaries({"reps": st.integers(0, 2),
+    "iqp": st.fixed_dictionaries({"layers": st.integers(0, 2),
                                   "pairs": st.sampled_from(["all", "linear", "ring", "none",
                                                             "rign"])}),
     "layered": st.fixed_dictionaries({
@@ -240,7 +240,7 @@ def encodings(draw, max_qubits=4):
 
 
 @QUICK
-@given(spec=encodings(), extra=st.dictionaries(st.sampled_from(["depth", "reps", "copies"]),
+@given(spec=encodings(), extra=st.dictionaries(st.sampled_from(["depth", "layers", "copies"]),
                                                st.integers(-1, 3), max_size=1))
 def test_build_encoding_returns_a_blueprint_or_our_error(spec, extra):
     family, n_features, options = spec

@@ -161,8 +161,8 @@ def _custom_blueprint(rng):
 
 
 CASES = [
-    ("angle", {"axis": "y"}), ("angle", {"axis": "z"}), ("iqp", {"reps": 2, "pairs": "all"}),
-    ("iqp", {"reps": 1, "pairs": "linear"}), ("layered", {"layers": 2, "entangler": "ring"}),
+    ("angle", {"axis": "y"}), ("angle", {"axis": "z"}), ("iqp", {"layers": 2, "pairs": "all"}),
+    ("iqp", {"layers": 1, "pairs": "linear"}), ("layered", {"layers": 2, "entangler": "ring"}),
     ("layered", {"layers": 1, "entangler_gate": "cnot", "axes": ("x", "z")}),
 ]
 

@@ -320,3 +320,8 @@ def test_sweep_with_the_real_run_function_on_tiny_data(tmp_path):
             row["training.steps"]
     report = (out / "sweep_report.html").read_text()
     assert "tuned RBF SVM" in report and f"trials/{rows[0]['trial_id']}/report.html" in report
+
+
+def test_retired_key_in_a_sweep_names_the_new_one():
+    with pytest.raises(InvalidInputError, match="sweep \\[grid\\].*renamed to 'encoding.layers'"):
+        plan_sweep({"grid": {"encoding.reps": [1, 2]}})

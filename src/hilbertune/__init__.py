@@ -27,8 +27,8 @@ from hilbertune.encodings import (FAMILIES, amplitude_state, bit_flips, build_en
                                   iqp_style, reuploading_layers, single_axis_rotations)
 from hilbertune.errors import (ArtifactError, HilbertuneError, InvalidInputError,
                                NotFittedError, ResourceLimitError, TrainingError)
-from hilbertune.hardware import (clip_eigenvalues, compute_uncompute_depolarizing,
-                                 density_matrix_kernel, depolarize_kernel, readout_kernel,
+from hilbertune.hardware import (clip_eigenvalues, density_matrix_kernel, depolarize_kernel,
+                                 inversion_test_depolarizing, readout_kernel,
                                  repair_gram, restore_unit_diagonal, shift_spectrum,
                                  shot_budget, shot_sampled_gram, shot_variance)
 from hilbertune.kernels import (FrozenKernel, fidelity_gram, interference_zero_probability,
@@ -64,8 +64,8 @@ __all__ = [
     "effective_dimension", "geometric_difference", "linear_svm", "mcnemar_exact",
     "repeated_split_scores", "spectrum", "tuned_rbf_svm",
     # hardware and export
-    "clip_eigenvalues", "compute_uncompute_depolarizing", "density_matrix_kernel",
-    "depolarize_kernel", "readout_kernel", "repair_gram", "restore_unit_diagonal",
+    "clip_eigenvalues", "density_matrix_kernel", "depolarize_kernel",
+    "inversion_test_depolarizing", "readout_kernel", "repair_gram", "restore_unit_diagonal",
     "shift_spectrum",
     "shot_budget", "shot_sampled_gram", "shot_variance",
     "encoding_to_qasm3", "kernel_circuit_to_qasm3",

@@ -452,7 +452,7 @@ def apply_circuit(blueprint: Blueprint, params: dict, X, states, *, inverse: boo
     """Apply U(x) (or U(x)^dagger) to arbitrary input states, one x per state.
 
     Slower than ``encode_states`` (no product-state shortcut); used for the per-pair
-    compute-uncompute reference and the interference-circuit simulator.
+    inversion-test reference and the interference-circuit simulator.
 
     Args:
       X: float array of shape [batch, F].

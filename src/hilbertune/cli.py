@@ -243,14 +243,17 @@ def _cmd_export(args, console):
 def _cmd_reproduce(args, console):
     from hilbertune.runs import reproduce_run
 
-    same, differences = reproduce_run(args.run_dir, keep=args.keep,
-                                      progress=not console.quiet)
+    same, differences, notes = reproduce_run(args.run_dir, keep=args.keep,
+                                             progress=not console.quiet)
+    for note in notes:
+        console.say(f"note: {note}")
     if same:
         console.say("reproduced: parameters and metrics are identical")
     else:
         for line in differences:
             print(f"difference: {line}", file=sys.stderr)
-    return {"identical": same, "differences": differences}, (EXIT_OK if same else EXIT_FAILURE)
+    result = {"identical": same, "differences": differences, "mapped_names": notes}
+    return result, (EXIT_OK if same else EXIT_FAILURE)
 
 
 def _cmd_sweep(args, console):

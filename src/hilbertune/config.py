@@ -45,13 +45,12 @@ SCHEMA = {
         "family": ("layered", str, _one_of("angle", "iqp", "layered", "amplitude", "basis"),
                    "encoding family"),
         "qubits": (4, int, _POSITIVE, "number of qubits (angle/iqp/basis: one per feature)"),
-        "layers": (2, int, _POSITIVE, "layers of the layered encoding"),
+        "layers": (2, int, _POSITIVE, "repeated blocks of the layered and iqp encodings"),
         "entangler": ("ring", str, _one_of("none", "linear", "ring", "all"),
                       "entangling pattern of the layered encoding / pair pattern of iqp"),
         "entangler_gate": ("cz", str, _one_of("cz", "cnot"), "entangling gate (layered)"),
         "axes": (["y", "z"], list, None, "rotation axes per feature upload (layered)"),
         "axis": ("y", str, _one_of("x", "y", "z"), "rotation axis (angle)"),
-        "reps": (2, int, _POSITIVE, "repetitions (iqp)"),
         "copies": (1, int, _POSITIVE, "tensor copies (amplitude)"),
         "bandwidth": (0.0, float, ("in [0, 1e6]", lambda v: 0 <= v <= 1e6),
                       "initial bandwidth factor; 0 = median heuristic on the training data"),
@@ -91,8 +90,8 @@ SCHEMA = {
     },
     "hardware": {
         "enabled": (True, bool, None, "estimate shot budget and device noise in the report"),
-        "estimator": ("compute_uncompute", str,
-                      _one_of("compute_uncompute", "hadamard_test", "swap_test"),
+        "estimator": ("inversion_test", str,
+                      _one_of("inversion_test", "hadamard_test", "swap_test"),
                       "circuit that estimates each kernel entry"),
         "shots_grid": ([64, 256, 1024, 4096], list, None, "shot counts for the budget curve"),
         "tolerance": (0.02, float, _UNIT, "accepted test-accuracy loss against the exact kernel"),
@@ -107,6 +106,17 @@ SCHEMA = {
                        "samples per state chunk (0 = automatic, about 4 MiB of states)"),
     },
 }
+
+
+# Names this tool no longer takes. A user who gives one gets the new name in one line (no
+# silent alias); `runs.load_run` maps them explicitly for run directories written before.
+RETIRED_KEYS = {"encoding.reps": "encoding.layers"}
+RETIRED_VALUES = {("hardware.estimator", "compute_uncompute"): "inversion_test"}
+
+
+def retired_key_error(dotted: str) -> InvalidInputError:
+    return InvalidInputError(f"config key '{dotted}' was renamed to '{RETIRED_KEYS[dotted]}'; "
+                             f"write {RETIRED_KEYS[dotted]} instead")
 
 
 def defaults() -> dict:
@@ -129,6 +139,8 @@ def all_keys() -> list:
 
 
 def _unknown(key: str) -> InvalidInputError:
+    if key in RETIRED_KEYS:
+        return retired_key_error(key)
     close = difflib.get_close_matches(key, all_keys(), n=1, cutoff=0.5)
     if not close:  # a bare option name given without its section
         close = [k for k in all_keys() if k.split(".")[-1] == key.split(".")[-1]][:1]
@@ -155,6 +167,10 @@ def _coerce(dotted: str, value):
                                 f"(like {default!r}), got {value!r}")
     if kind is float and not math.isfinite(value):
         raise InvalidInputError(f"config key '{dotted}' must be finite, got {value!r}")
+    if isinstance(value, str) and (dotted, value) in RETIRED_VALUES:
+        raise InvalidInputError(f"config key '{dotted}': {value!r} was renamed to "
+                                f"{RETIRED_VALUES[dotted, value]!r}; write {dotted} = "
+                                f"\"{RETIRED_VALUES[dotted, value]}\" instead")
     if check is not None and not check[1](value):
         raise InvalidInputError(f"config key '{dotted}' must be {check[0]}, got {value!r}")
     return value

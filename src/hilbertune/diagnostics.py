@@ -88,7 +88,7 @@ def concentration(K, n_qubits: int, shots: int = 1000) -> dict:
     Our rule (documented, not from the paper): the kernel is **concentrated** when the
     spread of its off-diagonal values is smaller than the shot noise of one estimate at
     their mean value, ``std(k_ij) < sqrt(m (1 - m) / shots)`` with ``m = mean(k_ij)`` (the
-    binomial standard deviation of a compute-uncompute estimate with ``shots`` shots).
+    binomial standard deviation of an inversion-test estimate with ``shots`` shots).
     Then the differences the SVM relies on are below the measurement noise. The message
     says whether values sit near ``1/2**n`` (nearly orthogonal states: lower the
     bandwidth or the qubit count) or near 1 (nearly identical states: raise the bandwidth).

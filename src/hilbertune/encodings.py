@@ -55,19 +55,19 @@ def single_axis_rotations(n_features: int, *, axis: str = "y") -> Blueprint:
                      family="angle")
 
 
-def iqp_style(n_features: int, *, reps: int = 2, pairs: str = "all") -> Blueprint:
+def iqp_style(n_features: int, *, layers: int = 2, pairs: str = "all") -> Blueprint:
     """IQP-style encoding (Havlicek et al., Nature 567, 209 (2019)).
 
-    ``reps`` times: Hadamard on every qubit, then ``exp(i sum_i phi_i Z_i + i sum_(i,j)
+    ``layers`` times: Hadamard on every qubit, then ``exp(i sum_i phi_i Z_i + i sum_(i,j)
     phi_ij Z_i Z_j)`` with ``phi_i = x_i`` and ``phi_ij = (pi - x_i)(pi - x_j)`` on the
     chosen pair pattern (features scaled by the bandwidth first). Each phase is trainable:
     RZ / ZZ angle ``w * phi + b`` with initial ``w = -2`` (since exp(i phi Z) = RZ(-2 phi)).
     """
     _check_positive("n_features", n_features)
-    _check_positive("reps", reps)
+    _check_positive("layers", layers)
     pair_list = _pairs(pairs, n_features)
     steps, weights = [], []
-    for _ in range(reps):
+    for _ in range(layers):
         steps += [Step("h", (q,)) for q in range(n_features)]
         for q in range(n_features):
             steps.append(Step("rz", (q,), AngleRule("feature", (q,), len(weights))))

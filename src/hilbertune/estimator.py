@@ -67,7 +67,7 @@ class EncodingClassifier(ClassifierMixin, BaseEstimator):
       n_qubits: qubits of the "layered" family; None = min(n_features, 8). With more features
         than qubits the layered family re-uploads (qubit q takes features q, q + n, ...).
         The other families take their width from the features (None or that width).
-      layers: layers of "layered" (reps of "iqp"); ignored by the other families.
+      layers: repeated blocks of the "layered" and "iqp" families; ignored by the others.
       encoding_options: extra keyword options for the family (dict), e.g. {"entangler": "linear"}.
       objective, steps, learning_rate, optimizer, batch_size, validation_fraction, bandwidth:
         training settings (see ``hilbertune.training.TrainingSettings``). The defaults are
@@ -112,7 +112,7 @@ class EncodingClassifier(ClassifierMixin, BaseEstimator):
         family = self.family
         if family in _FIXED_WIDTH:
             if family == "iqp":
-                options.setdefault("reps", self.layers)
+                options.setdefault("layers", self.layers)
             blueprint = build_encoding(family, n_features, **options)
             if self.n_qubits is not None and blueprint.n_qubits != self.n_qubits:
                 raise InvalidInputError(

@@ -8,7 +8,7 @@ states; every random draw comes from an explicit seed (or numpy ``Generator``) a
 
 Estimators of one kernel entry ``k = |<psi(x)|psi(x')>|^2`` (``s`` = shots per circuit):
 
-* ``compute_uncompute``: run ``U(x')^dagger U(x)`` on n qubits and count all-zeros outcomes
+* ``inversion_test``: run ``U(x')^dagger U(x)`` on n qubits and count all-zeros outcomes
   ``m ~ Binomial(s, k)``; ``k_hat = m / s``, unbiased, ``var = k (1 - k) / s`` (binomial).
 * ``swap_test``: two registers plus one ancilla (2n + 1 qubits), ``P0 = 1/2 + k/2``;
   ``k_hat = 2 m / s - 1``, unbiased, ``var = (1 - k^2) / s``.
@@ -40,7 +40,7 @@ from hilbertune.circuits import (Blueprint, compile_blueprint, encode_states, re
                                  step_angles, validate_features)
 from hilbertune.errors import InvalidInputError, ResourceLimitError
 
-ESTIMATORS = ("compute_uncompute", "hadamard_test", "swap_test")
+ESTIMATORS = ("inversion_test", "hadamard_test", "swap_test")
 REPAIR_METHODS = ("clip", "shift", "clip_unit", "none")
 DENSITY_MATRIX_MAX_QUBITS = 8
 CHANNELS = ("local", "global")
@@ -55,12 +55,14 @@ def _check_estimator(estimator: str) -> str:
     if estimator not in ESTIMATORS:
         close = difflib.get_close_matches(str(estimator), ESTIMATORS, n=1)
         hint = f" (did you mean {close[0]!r}?)" if close else ""
+        if estimator == "compute_uncompute":
+            hint = " (renamed to 'inversion_test')"
         raise InvalidInputError(f"unknown estimator {estimator!r}{hint}; use one of "
                                 f"{', '.join(ESTIMATORS)}")
     return estimator
 
 
-def _check_shots(shots, estimator: str = "compute_uncompute", *, name: str = "shots") -> int:
+def _check_shots(shots, estimator: str = "inversion_test", *, name: str = "shots") -> int:
     ok = not isinstance(shots, bool) and isinstance(shots, (int, float, np.integer, np.floating))
     if ok:
         ok = math.isfinite(float(shots)) and float(shots).is_integer() and shots > 0
@@ -168,11 +170,11 @@ def _is_symmetric(K: np.ndarray, symmetric) -> bool:
 # --------------------------------------------------------------------------- estimators
 
 def estimator_qubits(estimator: str, n_qubits: int) -> int:
-    """Qubits of one estimation circuit: n (compute-uncompute), n + 1 (Hadamard test),
+    """Qubits of one estimation circuit: n (inversion test), n + 1 (Hadamard test),
     2 n + 1 (swap test)."""
     _check_estimator(estimator)
     n = _check_count(n_qubits, "n_qubits")
-    return {"compute_uncompute": n, "hadamard_test": n + 1, "swap_test": 2 * n + 1}[estimator]
+    return {"inversion_test": n, "hadamard_test": n + 1, "swap_test": 2 * n + 1}[estimator]
 
 
 def circuits_per_entry(estimator: str) -> int:
@@ -196,7 +198,7 @@ def _squared_estimate_variance(mu: np.ndarray, shots: int) -> np.ndarray:
     return a * (4.0 * mu2 / s + (2.0 * a - 8.0 * mu2) / s**2 + (6.0 * mu2 - 2.0) / s**3)
 
 
-def shot_variance(K, shots, *, estimator: str = "compute_uncompute", overlaps=None):
+def shot_variance(K, shots, *, estimator: str = "inversion_test", overlaps=None):
     """Exact variance of each entry's finite-shot estimate.
 
     Args:
@@ -210,14 +212,14 @@ def shot_variance(K, shots, *, estimator: str = "compute_uncompute", overlaps=No
       float64 array of shape [N_a, N_b].
 
     References:
-      Binomial variance ``k (1 - k) / s`` (compute-uncompute) and ``(1 - k^2) / s`` (swap
+      Binomial variance ``k (1 - k) / s`` (inversion test) and ``(1 - k^2) / s`` (swap
       test, from ``P0 = 1/2 + k/2``): common practice, e.g. Buhrman, Cleve, Watrous & de Wolf,
       Phys. Rev. Lett. 87, 167902 (2001) for the swap test.
     """
     _check_estimator(estimator)
     shots = _check_shots(shots, estimator)
     K = _as_kernel_values(K)
-    if estimator == "compute_uncompute":
+    if estimator == "inversion_test":
         return K * (1.0 - K) / shots
     if estimator == "swap_test":
         return (1.0 - K * K) / shots
@@ -228,9 +230,9 @@ def shot_variance(K, shots, *, estimator: str = "compute_uncompute", overlaps=No
 
 
 def _require_qubits(estimator, depolarizing, readout_error, n_qubits) -> None:
-    if estimator == "compute_uncompute" and n_qubits is None and (depolarizing > 0
-                                                                  or readout_error > 0):
-        raise InvalidInputError("device noise on compute-uncompute needs n_qubits (the "
+    if estimator == "inversion_test" and n_qubits is None and (depolarizing > 0
+                                                               or readout_error > 0):
+        raise InvalidInputError("device noise on the inversion test needs n_qubits (the "
                                 "all-zeros probability depends on it); pass "
                                 "n_qubits=blueprint.n_qubits")
 
@@ -239,17 +241,17 @@ def _measured_values(K, overlaps, estimator, depolarizing, n_qubits, readout_err
     """What the circuit measures after global depolarizing (p) and readout flips (e).
 
     A global depolarizing channel before the measurement mixes the outcome distribution with
-    that of the maximally mixed state: ``P -> (1 - p) P + p P_mixed``. For compute-uncompute
+    that of the maximally mixed state: ``P -> (1 - p) P + p P_mixed``. For the inversion test
     ``P_mixed(all zeros) = 1 / 2^n``, so ``k -> (1 - p) k + p / 2^n`` (Hubregtsen et al.,
     Phys. Rev. A 106, 042431 (2022)); for the ancilla circuits ``P_mixed(0) = 1/2``, so the
     swap test sees ``(1 - p) k`` and the Hadamard test ``(1 - p) <psi|phi>``.
 
     Readout flips act on the measured bits afterwards. One ancilla bit read wrongly with
     probability e turns ``P0`` into ``e + (1 - 2 e) P0``, so ``2 P0 - 1`` shrinks by
-    ``1 - 2 e`` (exact; common practice); compute-uncompute follows ``readout_kernel``.
+    ``1 - 2 e`` (exact; common practice); the inversion test follows ``readout_kernel``.
     """
     if depolarizing > 0.0:
-        if estimator == "compute_uncompute":
+        if estimator == "inversion_test":
             K = depolarize_kernel(K, depolarizing, n_qubits)
         elif estimator == "swap_test":
             K = (1.0 - depolarizing) * K
@@ -257,7 +259,7 @@ def _measured_values(K, overlaps, estimator, depolarizing, n_qubits, readout_err
             K, overlaps = (1.0 - depolarizing) ** 2 * K, (1.0 - depolarizing) * overlaps
     if readout_error > 0.0:
         shrink = 1.0 - 2.0 * readout_error
-        if estimator == "compute_uncompute":
+        if estimator == "inversion_test":
             K = readout_kernel(K, readout_error, n_qubits)
         elif estimator == "swap_test":
             K = shrink * K
@@ -266,7 +268,7 @@ def _measured_values(K, overlaps, estimator, depolarizing, n_qubits, readout_err
     return K, overlaps
 
 
-def shot_sampled_gram(K, shots, *, estimator: str = "compute_uncompute", seed,
+def shot_sampled_gram(K, shots, *, estimator: str = "inversion_test", seed,
                       symmetric: bool | None = None, estimate_diagonal: bool = False,
                       overlaps=None, depolarizing: float = 0.0, n_qubits: int | None = None,
                       readout_error: float = 0.0):
@@ -275,7 +277,7 @@ def shot_sampled_gram(K, shots, *, estimator: str = "compute_uncompute", seed,
     Args:
       K: exact kernel values in [0, 1], array of shape [N_a, N_b].
       shots: shots per circuit (the Hadamard test runs two circuits per entry).
-      estimator: ``"compute_uncompute"``, ``"hadamard_test"`` or ``"swap_test"`` (see the
+      estimator: ``"inversion_test"``, ``"hadamard_test"`` or ``"swap_test"`` (see the
         module docstring for what each estimates).
       seed: int or numpy Generator; the only source of randomness.
       symmetric: True for a train Gram (only i < j is sampled and mirrored, so the output is
@@ -287,7 +289,7 @@ def shot_sampled_gram(K, shots, *, estimator: str = "compute_uncompute", seed,
       depolarizing: global depolarizing probability p of the whole estimation circuit
         (0 = noiseless); the estimates then scatter around the depolarized values
         (see ``_measured_values``).
-      n_qubits: qubits of the encoding; needed by compute_uncompute when depolarizing or
+      n_qubits: qubits of the encoding; needed by inversion_test when depolarizing or
         readout_error > 0.
       readout_error: probability that a measured bit is read wrongly (independent,
         symmetric), applied after depolarizing; no mitigation is applied.
@@ -315,7 +317,7 @@ def shot_sampled_gram(K, shots, *, estimator: str = "compute_uncompute", seed,
         rows, cols = np.triu_indices(K.shape[0], k=0 if estimate_diagonal else 1)
     else:
         rows, cols = np.indices(K.shape).reshape(2, -1)
-    if estimator == "compute_uncompute":
+    if estimator == "inversion_test":
         values = rng.binomial(shots, measured[rows, cols]) / shots
     elif estimator == "swap_test":
         p0 = np.clip(0.5 + 0.5 * measured[rows, cols], 0.0, 1.0)
@@ -370,9 +372,9 @@ def depolarizing_from_gates(one_qubit_gates: int, two_qubit_gates: int, *,
     return float(1.0 - (1.0 - e1) ** g1 * (1.0 - e2) ** g2)
 
 
-def compute_uncompute_depolarizing(blueprint: Blueprint, *, one_qubit_error: float,
-                                   two_qubit_error: float) -> float:
-    """Depolarizing probability of the compute-uncompute circuit ``U(x')^dagger U(x)``.
+def inversion_test_depolarizing(blueprint: Blueprint, *, one_qubit_error: float,
+                                two_qubit_error: float) -> float:
+    """Depolarizing probability of the inversion-test circuit ``U(x')^dagger U(x)``.
 
     That circuit has twice the encoding's gates (the encoding and its inverse), so
     ``g1 = 2 * one_qubit_gates`` and ``g2 = 2 * two_qubit_gates`` of
@@ -394,7 +396,7 @@ def depolarize_kernel(K, p: float, n_qubits: int):
     Args:
       K: kernel values, array of shape [N_a, N_b].
       p: depolarizing probability in [0, 1].
-      n_qubits: qubits of the compute-uncompute circuit.
+      n_qubits: qubits of the inversion-test circuit.
 
     Returns:
       float64 array of shape [N_a, N_b].
@@ -408,7 +410,7 @@ def depolarize_kernel(K, p: float, n_qubits: int):
 
 
 def readout_kernel(K, readout_error: float, n_qubits: int):
-    """Observed all-zeros frequency of compute-uncompute under readout bit flips.
+    """Observed all-zeros frequency of the inversion test under readout bit flips.
 
     Each of the n measured bits is read wrongly with probability e, independently and
     symmetrically (common practice model). The all-zeros count then keeps a true all-zeros
@@ -425,7 +427,7 @@ def readout_kernel(K, readout_error: float, n_qubits: int):
     Args:
       K: kernel values (or already depolarized values), array of shape [N_a, N_b].
       readout_error: flip probability e per measured bit, in [0, 1].
-      n_qubits: measured qubits of the compute-uncompute circuit.
+      n_qubits: measured qubits of the inversion-test circuit.
 
     Returns:
       float64 array of shape [N_a, N_b].
@@ -535,7 +537,7 @@ def density_matrix_kernel(blueprint: Blueprint, params: dict, X_a, X_b=None, *,
                           one_qubit_error: float = 0.0, two_qubit_error: float = 0.0,
                           channel: str = "local", final_depolarizing: float = 0.0,
                           pairs_per_chunk: int = 64):
-    """Noisy compute-uncompute kernel ``<0|rho|0>`` from a density-matrix simulation.
+    """Noisy inversion-test kernel ``<0|rho|0>`` from a density-matrix simulation.
 
     For each pair the circuit ``U(x_b)^dagger U(x_a)`` is applied step by step to
     ``rho = |0><0|`` as ``U rho U^dagger``; after every step a depolarizing channel with the
@@ -570,7 +572,7 @@ def density_matrix_kernel(blueprint: Blueprint, params: dict, X_a, X_b=None, *,
         raise ResourceLimitError(
             f"density-matrix simulation is limited to {DENSITY_MATRIX_MAX_QUBITS} qubits (a "
             f"2^n x 2^n matrix per pair) but the encoding has {n}; use the global model "
-            "depolarize_kernel(K, compute_uncompute_depolarizing(...), n_qubits) instead")
+            "depolarize_kernel(K, inversion_test_depolarizing(...), n_qubits) instead")
     if isinstance(pairs_per_chunk, bool) or not isinstance(pairs_per_chunk, int) \
             or pairs_per_chunk < 1:
         raise InvalidInputError(f"pairs_per_chunk must be a positive integer, got "
@@ -791,7 +793,7 @@ def _analytic_shots(K_train, overlaps_train, estimator, fraction, depolarizing, 
 
 def shot_budget(K_train, K_test, y_train, y_test, *, seed, shots_grid=(10, 100, 1000, 10000),
                 C: float = 1.0, tolerance: float = 0.02, repeats: int = 5,
-                estimator: str = "compute_uncompute", overlaps_train=None, overlaps_test=None,
+                estimator: str = "inversion_test", overlaps_train=None, overlaps_test=None,
                 repair: str = "clip", depolarizing: float = 0.0, n_qubits: int | None = None,
                 spread_fraction: float = 0.1, readout_error: float = 0.0) -> dict:
     """How many shots a learned kernel needs before its SVM accuracy stops suffering.

@@ -430,7 +430,7 @@ def interference_zero_probability(blueprint: Blueprint, params: dict, x, x_prime
     return p0 if batch > 1 else p0[0]
 
 
-def compute_uncompute_probability(blueprint: Blueprint, params: dict, x, x_prime):
+def inversion_test_probability(blueprint: Blueprint, params: dict, x, x_prime):
     """|<0|U(x')^dagger U(x)|0>|^2 simulated per pair (the slow reference path).
 
     Args:

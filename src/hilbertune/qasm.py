@@ -216,7 +216,7 @@ def encoding_to_qasm3(blueprint: Blueprint, params: dict) -> str:
 
 
 def kernel_circuit_to_qasm3(blueprint: Blueprint, params: dict) -> str:
-    """OpenQASM 3 compute-uncompute circuit estimating one kernel entry ``k(x, y)``.
+    """OpenQASM 3 inversion-test circuit estimating one kernel entry ``k(x, y)``.
 
     Applies ``U(x)`` then ``U(y)^dagger`` (the inverse encoding: steps reversed, rotation
     angles negated, U gates inverted) and measures every qubit; the frequency of the

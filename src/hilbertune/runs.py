@@ -67,7 +67,7 @@ def build_blueprint(config: dict, n_features: int):
     family = enc["family"]
     options = {
         "angle": {"axis": enc["axis"]},
-        "iqp": {"reps": enc["reps"], "pairs": enc["entangler"]},
+        "iqp": {"layers": enc["layers"], "pairs": enc["entangler"]},
         "layered": {"n_qubits": enc["qubits"], "layers": enc["layers"],
                     "entangler": enc["entangler"], "entangler_gate": enc["entangler_gate"],
                     "axes": tuple(enc["axes"])},
@@ -464,23 +464,23 @@ def hardware_estimate(config, blueprint, params, X_train, X_test, k_train, k_tes
     budget = hardware.shot_budget(k_train, k_test, y_train, y_test, **common)
     out = {"estimator": estimator, "shot_budget": budget}
     if blueprint.state_kind == "gates":
-        p = hardware.compute_uncompute_depolarizing(
+        p = hardware.inversion_test_depolarizing(
             blueprint, one_qubit_error=hw["one_qubit_error"],
             two_qubit_error=hw["two_qubit_error"])
         noisy = hardware.shot_budget(k_train, k_test, y_train, y_test, depolarizing=p,
                                      readout_error=hw["readout_error"], **common)
         readout = ("; then readout flips: k -> f k + (1-k)(1-f)/(2^n-1), f = (1-e)^n "
-                   "(non-zero outcomes assumed even)" if estimator == "compute_uncompute"
+                   "(non-zero outcomes assumed even)" if estimator == "inversion_test"
                    else "; then readout flips shrink it by (1-2e)")
         out["device_noise"] = {
-            "model": {"compute_uncompute": "global depolarizing per kernel entry, k -> "
-                                           "(1-p) k + p/2^n (Hubregtsen et al. 2022)",
+            "model": {"inversion_test": "global depolarizing per kernel entry, k -> "
+                                        "(1-p) k + p/2^n (Hubregtsen et al. 2022)",
                       "swap_test": "global depolarizing shrinks the measured value: k -> "
                                    "(1-p) k",
                       "hadamard_test": "global depolarizing shrinks the measured overlap by "
                                        "(1-p)"}[estimator]
             + (readout if hw["readout_error"] > 0 else ""),
-            "p_from": "gate counts of the compute-uncompute circuit (encoding and its "
+            "p_from": "gate counts of the inversion-test circuit (encoding and its "
                       "inverse); for the ancilla estimators an approximation, since their "
                       "controlled circuits have more gates",
             "one_qubit_error": hw["one_qubit_error"], "two_qubit_error": hw["two_qubit_error"],
@@ -512,8 +512,42 @@ def summary_lines(summary: dict) -> list:
 
 # --------------------------------------------------------------------------- reading runs
 
+def _map_retired_names(user: dict) -> list:
+    """Rewrite, in place, names an older run's config.toml may hold; one note per change.
+
+    ``encoding.reps`` (the repetitions of the iqp family) became ``encoding.layers``, which
+    now serves both the layered and the iqp family; for other families it was unused.
+    """
+    from hilbertune import config as cfg
+
+    notes = []
+    for old, new in cfg.RETIRED_KEYS.items():
+        old_section, old_key = old.split(".")
+        section = user.get(old_section)
+        if not isinstance(section, dict) or old_key not in section:
+            continue
+        value = section.pop(old_key)
+        if old == "encoding.reps" and section.get("family") != "iqp":
+            notes.append(f"dropped old name {old} (unused by the {section.get('family')!r} "
+                         "encoding)")
+            continue
+        new_section, new_key = new.split(".")
+        user.setdefault(new_section, {})[new_key] = value
+        notes.append(f"mapped old name {old} to {new}")
+    for (dotted, old), new in cfg.RETIRED_VALUES.items():
+        section, key = dotted.split(".")
+        if isinstance(user.get(section), dict) and user[section].get(key) == old:
+            user[section][key] = new
+            notes.append(f"mapped old name {dotted} = {old!r} to {new!r}")
+    return notes
+
+
 def load_run(run_dir):
-    """Verified artifacts of a finished run: (config, params, arrays, summary)."""
+    """Verified artifacts of a finished run: (config, params, arrays, summary).
+
+    A config.toml written before a rename is translated explicitly (``_map_retired_names``);
+    the notes go to ``summary["mapped_names"]`` (absent when nothing was mapped).
+    """
     from hilbertune import config as cfg
 
     run_dir = Path(run_dir)
@@ -524,7 +558,9 @@ def load_run(run_dir):
         raise ArtifactError(f"{artifacts.MANIFEST} in {str(run_dir)!r} does not cover "
                             f"{', '.join(unlisted)}, so they cannot be trusted; rerun the fit")
     try:
-        config = cfg.resolve_config(cfg.load_toml(run_dir / "config.toml"))
+        user = cfg.load_toml(run_dir / "config.toml")
+        mapped = _map_retired_names(user)
+        config = cfg.resolve_config(user)
     except InvalidInputError as exc:
         raise ArtifactError(f"config.toml in {str(run_dir)!r} is not usable ({exc})") from None
     arrays = artifacts.read_npz(run_dir / "params.npz")
@@ -538,6 +574,8 @@ def load_run(run_dir):
     if not isinstance(summary, dict) or not isinstance(summary.get("dataset"), dict):
         raise ArtifactError(f"summary.json in {str(run_dir)!r} has no dataset section; rerun "
                             "the fit")
+    if mapped:
+        summary["mapped_names"] = mapped
     return config, params, arrays, summary
 
 
@@ -574,7 +612,9 @@ def reproduce_run(run_dir, *, keep=None, progress: bool = False):
     """Rerun from the saved config and seed; compare parameters and metrics.
 
     Returns:
-      (identical: bool, differences: list of readable strings).
+      (identical: bool, differences: list of readable strings, notes: list of old config
+      names mapped to their new ones, e.g. "mapped old name encoding.reps to
+      encoding.layers").
     """
     config, params, arrays, summary = load_run(run_dir)
     target = Path(keep) if keep else Path(tempfile.mkdtemp(prefix="hilbertune-reproduce-"))
@@ -597,7 +637,7 @@ def reproduce_run(run_dir, *, keep=None, progress: bool = False):
             if summary["alignment"][key] != new_summary["alignment"][key]:
                 differences.append(f"alignment.{key}: {summary['alignment'][key]} then "
                                    f"{new_summary['alignment'][key]}")
-        return not differences, differences
+        return not differences, differences, summary.get("mapped_names", [])
     finally:
         if keep is None:
             shutil.rmtree(target, ignore_errors=True)

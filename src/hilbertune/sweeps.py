@@ -121,6 +121,8 @@ def _closest_key(key: str) -> str:
 
 
 def _check_key(table: str, key: str) -> None:
+    if key in cfg.RETIRED_KEYS:
+        raise InvalidInputError(f"sweep [{table}]: {cfg.retired_key_error(key)}")
     if key not in cfg.all_keys():
         raise InvalidInputError(f"sweep [{table}]: unknown config key '{key}'{_closest_key(key)}")
 
