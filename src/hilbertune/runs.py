@@ -448,50 +448,13 @@ def _label_ids(y, classes):
 
 def hardware_estimate(config, blueprint, params, X_train, X_test, k_train, k_test, y_train,
                       y_test, C) -> dict:
-    """Shot budget (noiseless and under gate noise) for the learned kernel (JSON-able dict)."""
+    """Shot budget (noiseless and under device noise) for the chosen kernel (``hardware``)."""
     from hilbertune import hardware
 
-    hw = config["hardware"]
-    estimator = hw["estimator"]
-    overlaps = {}
-    if estimator == "hadamard_test":  # estimates Re and Im of the overlap, needs the phase
-        overlaps = {"overlaps_train": hardware.state_overlaps(blueprint, params, X_train),
-                    "overlaps_test": hardware.state_overlaps(blueprint, params, X_test,
-                                                             X_train)}
-    common = dict(seed=config["seed"], shots_grid=sorted(hw["shots_grid"]), C=C,
-                  tolerance=hw["tolerance"], estimator=estimator, n_qubits=blueprint.n_qubits,
-                  **overlaps)
-    budget = hardware.shot_budget(k_train, k_test, y_train, y_test, **common)
-    out = {"estimator": estimator, "shot_budget": budget}
-    if blueprint.state_kind == "gates":
-        p = hardware.inversion_test_depolarizing(
-            blueprint, one_qubit_error=hw["one_qubit_error"],
-            two_qubit_error=hw["two_qubit_error"])
-        noisy = hardware.shot_budget(k_train, k_test, y_train, y_test, depolarizing=p,
-                                     readout_error=hw["readout_error"], **common)
-        readout = ("; then readout flips: k -> f k + (1-k)(1-f)/(2^n-1), f = (1-e)^n "
-                   "(non-zero outcomes assumed even)" if estimator == "inversion_test"
-                   else "; then readout flips shrink it by (1-2e)")
-        out["device_noise"] = {
-            "model": {"inversion_test": "global depolarizing per kernel entry, k -> "
-                                        "(1-p) k + p/2^n (Hubregtsen et al. 2022)",
-                      "swap_test": "global depolarizing shrinks the measured value: k -> "
-                                   "(1-p) k",
-                      "hadamard_test": "global depolarizing shrinks the measured overlap by "
-                                       "(1-p)"}[estimator]
-            + (readout if hw["readout_error"] > 0 else ""),
-            "p_from": "gate counts of the inversion-test circuit (encoding and its "
-                      "inverse); for the ancilla estimators an approximation, since their "
-                      "controlled circuits have more gates",
-            "one_qubit_error": hw["one_qubit_error"], "two_qubit_error": hw["two_qubit_error"],
-            "readout_error": hw["readout_error"],
-            "depolarizing_probability": p,
-            "test_accuracy_at_most_shots": noisy["curve"][-1]["test_accuracy_mean"]
-            if noisy.get("curve") else None,
-            "empirical_shots_with_noise": noisy.get("empirical_shots"),
-            "curve": noisy.get("curve"),
-        }
-    return out
+    return hardware.run_estimate(config["hardware"], blueprint, params, X_train, X_test,
+                                 k_train, k_test, y_train, y_test, C=C, seed=config["seed"],
+                                 kind=config["encoding"]["kind"],
+                                 gamma=config["encoding"]["gamma"])
 
 
 def summary_lines(summary: dict) -> list:
