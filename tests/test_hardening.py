@@ -512,7 +512,8 @@ def test_a_killed_fit_resumes_to_the_identical_result(moons_csv, reference_run, 
     out = tmp_path / "run"
     process = subprocess.Popen(fit_command(moons_csv, out), stdout=subprocess.DEVNULL,
                                stderr=subprocess.DEVNULL)
-    marker = out / "checkpoints" / "checkpoint.json"
+    # one checkpoint folder per training run of the main split (checkpoints/<scope>-<objective>)
+    marker = out / "checkpoints" / "full-centered_alignment" / "checkpoint.json"
     deadline = time.monotonic() + 240
     try:
         while not marker.exists():
@@ -531,7 +532,7 @@ def test_a_killed_fit_resumes_to_the_identical_result(moons_csv, reference_run, 
     saved = tomllib.loads((out / "config.toml").read_text())
     assert saved["training"]["steps"] == CRASH_STEPS
     state = json.loads(marker.read_text())
-    with np.load(out / "checkpoints" / "checkpoint.npz", allow_pickle=False) as npz:
+    with np.load(marker.parent / "checkpoint.npz", allow_pickle=False) as npz:
         assert len(npz.files) > 0
     assert 0 < state["step"] < CRASH_STEPS, "the kill did not land inside training"
 

@@ -72,11 +72,30 @@ SCHEMA = {
         "validation_fraction": (0.2, float, _FRACTION0, "share of training rows for early stopping"),
         "patience": (20, int, _NON_NEGATIVE, "steps without validation gain before stopping "
                      "(0 = never stop early)"),
-        "l2_penalty": (0.0, float, _NON_NEGATIVE, "L2 penalty on weight changes"),
+        "l2_penalty": (0.0, float, _NON_NEGATIVE, "L2 pull of the learned parameters toward "
+                       "their initial values (strength of sum ||p - p0||^2)"),
+        "bandwidth_range": (10.0, float, ("0 or at least 1", lambda v: v == 0 or v >= 1),
+                            "keep the learned bandwidth within [c0 / r, c0 * r] of its "
+                            "initial value c0 (0 = unbounded)"),
         "ridge_lambda": (0.1, float, _POSITIVE, "ridge regularizer of the ridge objectives"),
         "folds": (5, int, ("at least 2", lambda v: v >= 2), "folds of ridge_kfold"),
         "freeze": ([], list, None, "parameter names left untrained: weights, biases, log_bandwidth"),
         "checkpoint_every": (10, int, _NON_NEGATIVE, "steps between checkpoints (0 = none)"),
+    },
+    "selection": {
+        "candidates": (["untrained", "bandwidth", "full"], list, None,
+                       "kernels compared by inner cross-validation on the training part: "
+                       "'untrained' (always included), 'bandwidth' (only the bandwidth "
+                       "learned), 'full' (weights, biases and bandwidth learned)"),
+        "objectives": ([], list, None, "objectives of the learned candidates (alignment, "
+                       "centered_alignment, ridge_loo, ridge_kfold); [] = training.objective"),
+        "trajectory": ([0.25, 1.0], list, None, "fractions of training.steps at which full "
+                       "training is a candidate (early stopping chosen by inner CV)"),
+        "folds": (5, int, ("at least 2", lambda v: v >= 2),
+                  "stratified inner folds on the training part"),
+        "rule": ("one_standard_error", str, _one_of("one_standard_error", "best"),
+                 "how a candidate is chosen: the simplest within one standard error of the "
+                 "best (Hastie et al. 2009, 7.10), or the best mean"),
     },
     "svm": {
         "C": (0.0, float, _NON_NEGATIVE, "SVM regularization; 0 = tuned by cross-validation"),
@@ -104,6 +123,11 @@ SCHEMA = {
         "memory_budget": ("4GiB", str, None, "memory allowed for states and Gram matrices"),
         "chunk_size": (0, int, _NON_NEGATIVE,
                        "samples per state chunk (0 = automatic, about 4 MiB of states)"),
+        "workers": (0, int, _NON_NEGATIVE, "threads for repeated splits (0 = one per core, at "
+                    "most 4); results do not depend on it"),
+        "compile_cache": ("auto", str, None, "folder of JAX's persistent compilation cache, "
+                          "reused by later runs and sweep trials ('auto' = the user's cache "
+                          "folder, '' = off)"),
     },
 }
 
@@ -234,10 +258,39 @@ def check_consistency(config: dict) -> None:
     if bad:
         raise InvalidInputError(f"training.freeze names unknown parameters {bad}; use "
                                 "weights, biases, log_bandwidth")
+    check_selection(config)
     shots = config["hardware"]["shots_grid"]
     if not shots or any(not isinstance(s, int) or isinstance(s, bool) or s <= 0 for s in shots):
         raise InvalidInputError(f"hardware.shots_grid must be a non-empty list of positive "
                                 f"integers, got {shots!r}")
+
+
+def check_selection(config: dict) -> None:
+    """The [selection] lists: known names, fractions in (0, 1], something to compare."""
+    from hilbertune.objectives import OBJECTIVES
+    from hilbertune.selection import SCOPES
+
+    sel = config["selection"]
+    names = sel["candidates"]
+    bad = [c for c in names if c not in SCOPES]
+    if bad:
+        close = [difflib.get_close_matches(str(c), SCOPES, n=1) for c in bad]
+        hint = "".join(f" (did you mean {m[0]!r}?)" for m in close if m)
+        raise InvalidInputError(f"selection.candidates names unknown candidate(s) {bad}{hint}; "
+                                f"use some of {', '.join(SCOPES)}")
+    if not names:
+        raise InvalidInputError("selection.candidates is empty, so nothing can be chosen; list "
+                                "at least 'untrained' (e.g. [\"untrained\", \"bandwidth\", "
+                                "\"full\"])")
+    bad = [o for o in sel["objectives"] if o not in OBJECTIVES]
+    if bad:
+        raise InvalidInputError(f"selection.objectives names unknown objective(s) {bad}; use "
+                                f"some of {', '.join(OBJECTIVES)}")
+    fractions = sel["trajectory"]
+    if not fractions or any(isinstance(f, bool) or not isinstance(f, (int, float))
+                            or not 0 < f <= 1 for f in fractions):
+        raise InvalidInputError(f"selection.trajectory must be a non-empty list of fractions in "
+                                f"(0, 1] of training.steps, got {fractions!r}")
 
 
 def load_toml(path) -> dict:

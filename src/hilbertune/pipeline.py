@@ -214,20 +214,28 @@ def run_part(dataset, blueprint, settings: FitSettings, split_seed: int, *, spli
                       train_accuracy, baselines, seconds)
 
 
-def repeated_parts(dataset, blueprint, settings: FitSettings, main: PartResult) -> list:
-    """The main split plus ``repeats - 1`` more (split seeds seed + 1, seed + 2, ...), each
-    with its own learning and selection; independent splits run in parallel threads."""
-    seeds = [settings.seed + r for r in range(1, settings.repeats)]
+def all_parts(dataset, blueprint, settings: FitSettings, *, main_split=None,
+              checkpoint_dir=None, progress: bool = False) -> list:
+    """The main split (seed) and ``repeats - 1`` more (seeds seed + 1, seed + 2, ...), each
+    with its own learning and selection, run by the same function ``run_part``.
+
+    Independent splits run in ``settings.workers`` threads (JAX and libsvm release the
+    interpreter while they compute); each split's result does not depend on the order.
+    Only the main split writes checkpoints and shows training progress.
+    """
+    seeds = [settings.seed + r for r in range(settings.repeats)]
 
     def one(split_seed):
-        return run_part(dataset, blueprint, settings, split_seed)
+        main = split_seed == settings.seed
+        return run_part(dataset, blueprint, settings, split_seed,
+                        split=main_split if main else None,
+                        checkpoint_dir=checkpoint_dir if main else None,
+                        progress=progress and main and settings.workers == 1)
 
-    if settings.workers > 1 and len(seeds) > 1:
+    if settings.workers > 1:
         with concurrent.futures.ThreadPoolExecutor(settings.workers) as pool:
-            others = list(pool.map(one, seeds))
-    else:
-        others = [one(s) for s in seeds]
-    return [main] + others
+            return list(pool.map(one, seeds))
+    return [one(s) for s in seeds]
 
 
 # --------------------------------------------------------------------------- significance
@@ -311,9 +319,8 @@ def comparison_verdict(test: dict, alpha: float) -> str:
             f"Holm-adjusted p = {p:.3g}, alpha = {alpha}).")
 
 
-def selection_summary(selection, blueprint, split, settings: FitSettings) -> dict:
+def selection_summary(selection) -> dict:
     """JSON-able account of the candidates, their inner-CV accuracy and the choice."""
-    gram = gram_function(blueprint, settings)
     rows = []
     for s in selection.scores:
         c = s.candidate
