@@ -1,0 +1,257 @@
+"""Selection of the kernel by nested inner cross-validation (selection.py, pipeline.py)."""
+
+import csv
+import json
+
+import numpy as np
+import pytest
+from hypothesis import given, settings, strategies as st
+from sklearn.datasets import make_classification, make_moons
+
+from hilbertune import data
+from hilbertune.cli import main
+from hilbertune.diagnostics import precomputed_svm
+from hilbertune.encodings import build_encoding
+from hilbertune.errors import InvalidInputError
+from hilbertune.kernels import projected_gram, quantum_gram
+from hilbertune.pipeline import holm_adjust
+from hilbertune.selection import (Candidate, CandidateScore, SelectionSettings,
+                                  candidates_for, learn_and_select, one_standard_error_choice,
+                                  trajectory_steps)
+from hilbertune.training import TrainingSettings, train_encoding
+
+
+def score(name, mean, se, scope="full", steps=10):
+    return CandidateScore(Candidate(name, scope, "centered_alignment", steps), 1, (mean,), mean,
+                          se * 2.0, se)
+
+
+# --------------------------------------------------------------------------- the rule
+
+def test_one_standard_error_choice_matches_a_hand_computation():
+    # Hastie, Tibshirani & Friedman, The Elements of Statistical Learning, 2nd ed. (2009),
+    # 7.10: take the most parsimonious model within one standard error of the best.
+    # By hand: best = c (0.86, se 0.03), threshold 0.86 - 0.03 = 0.83; a (0.80) is below,
+    # b (0.83) reaches it and is simpler than c and d, so b is chosen.
+    scores = [score("a", 0.80, 0.02, "untrained", 0), score("b", 0.83, 0.01, "bandwidth"),
+              score("c", 0.86, 0.03), score("d", 0.85, 0.02, steps=60)]
+    assert one_standard_error_choice(scores) == (2, 1)
+    assert one_standard_error_choice(scores, "best") == (2, 2)
+    # with a tiny standard error of the best nothing simpler is close enough
+    tight = scores[:2] + [score("c", 0.86, 0.001), scores[3]]
+    assert one_standard_error_choice(tight) == (2, 2)
+    # ties of the best go to the simpler candidate
+    tie = [score("a", 0.9, 0.0, "untrained", 0), score("b", 0.9, 0.0)]
+    assert one_standard_error_choice(tie) == (0, 0)
+
+
+@settings(max_examples=200, deadline=None)
+@given(st.lists(st.lists(st.integers(0, 10), min_size=3, max_size=3), min_size=2, max_size=6))
+def test_the_choice_is_never_below_the_untrained_kernel_by_more_than_one_standard_error(folds):
+    scores = []
+    for i, correct in enumerate(folds):
+        acc = np.asarray(correct, float) / 10
+        sd = float(acc.std(ddof=1))
+        scores.append(CandidateScore(Candidate(f"c{i}", "untrained" if i == 0 else "full", "",
+                                               i), i, tuple(acc), float(acc.mean()), sd,
+                                     sd / np.sqrt(acc.size)))
+    best, chosen = one_standard_error_choice(scores)
+    assert scores[chosen].mean >= scores[0].mean - scores[best].se - 1e-12
+    assert scores[chosen].mean >= scores[best].mean - scores[best].se - 1e-12
+    assert chosen <= best  # never more complex than the best
+
+
+def test_holm_adjustment_matches_a_hand_computation():
+    # Holm, Scand. J. Statist. 6, 65 (1979): sorted p (0.01, 0.03, 0.04) times (3, 2, 1)
+    # -> 0.03, 0.06, 0.04, then a running maximum -> 0.03, 0.06, 0.06 (by hand)
+    assert holm_adjust([0.01, 0.04, 0.03]) == pytest.approx([0.03, 0.06, 0.06])
+    assert holm_adjust([0.5, 0.9]) == pytest.approx([1.0, 1.0])
+    # a test without a variance estimate stays undecided and does not count in m
+    assert holm_adjust([None, 0.02, 0.04]) == [None, pytest.approx(0.04), pytest.approx(0.04)]
+
+
+# --------------------------------------------------------------------------- candidates
+
+def test_candidates_are_ordered_simplest_first_and_skip_what_learns_nothing_new():
+    blueprint = build_encoding("layered", 2, n_qubits=2, layers=1)
+    training = TrainingSettings(steps=40)
+    names = [c.name for c in candidates_for(blueprint, training, SelectionSettings())]
+    assert names == ["untrained", "bandwidth/centered_alignment",
+                     "full/centered_alignment@10", "full/centered_alignment@40"]
+    # the untrained encoding is a candidate even when the user lists only "full"
+    only_full = SelectionSettings(scopes=("full",), objectives=("ridge_loo", "alignment"))
+    assert [c.name for c in candidates_for(blueprint, training, only_full)] == [
+        "untrained", "full/ridge_loo@10", "full/alignment@10", "full/ridge_loo@40",
+        "full/alignment@40"]
+    # with weights and biases frozen, "full" would learn only the bandwidth again
+    frozen = training._replace(freeze=("weights", "biases"))
+    assert [c.scope for c in candidates_for(blueprint, frozen, SelectionSettings())] == [
+        "untrained", "bandwidth"]
+    assert trajectory_steps(60, (0.25, 0.5, 1.0)) == (15, 30, 60)
+    assert trajectory_steps(2, (0.1, 0.25)) == (1,)
+
+
+def small_problem(seed=0, n=60):
+    X, y = make_moons(n, noise=0.2, random_state=seed)
+    split = data.split_and_scale(X, y, test_fraction=0.3, seed=seed, n_components=2)
+    blueprint = build_encoding("layered", 2, n_qubits=2, layers=1)
+
+    def gram(params, A, B=None):
+        return np.asarray(quantum_gram(blueprint, params, A, B), np.float64)
+
+    return split, blueprint, gram
+
+
+def test_selection_is_deterministic_and_independent_of_the_thread_count():
+    split, blueprint, gram = small_problem()
+    training = TrainingSettings(steps=6, patience=0)
+    runs = [learn_and_select(blueprint, split.X_train, split.y_train, training,
+                             SelectionSettings(folds=3, workers=w), seed=5, gram=gram)
+            for w in (1, 2, 1)]
+    for other in runs[1:]:
+        assert other.chosen == runs[0].chosen and other.scores == runs[0].scores
+        for name, params in runs[0].params.items():
+            for key, value in params.items():
+                assert np.asarray(other.params[name][key]).tobytes() == \
+                    np.asarray(value).tobytes()
+
+
+def test_learned_candidates_never_see_the_held_out_fold(monkeypatch):
+    # every training inside the inner CV gets only the fold's training rows
+    from hilbertune import training as training_module
+
+    split, blueprint, gram = small_problem()
+    seen = []
+    original = training_module.train_encoding
+
+    def spy(bp, X, y, *args, **kwargs):
+        seen.append(np.asarray(X).shape[0])
+        return original(bp, X, y, *args, **kwargs)
+
+    monkeypatch.setattr(training_module, "train_encoding", spy)
+    learn_and_select(blueprint, split.X_train, split.y_train, TrainingSettings(steps=3),
+                     SelectionSettings(folds=3), seed=0, gram=gram)
+    n = split.X_train.shape[0]
+    # 2 runs (bandwidth, full) per fold on about 2/3 of the rows, then 2 on all rows
+    assert sorted(seen)[-2:] == [n, n] and len(seen) == 2 * 3 + 2
+    assert all(size < n for size in sorted(seen)[:-2])
+
+
+def test_on_an_overfitting_setup_the_choice_stays_within_noise_of_the_untrained_kernel():
+    # 40 training rows, 4 qubits x 3 layers: 73 trainable numbers, trained hard on noisy
+    # labels (15% flipped). Fully learned kernels lose held-out accuracy here; the choice
+    # must not (360 held-out rows: a binomial standard error of about 2.3 points).
+    X, y = make_classification(400, n_features=4, n_informative=2, n_redundant=0,
+                               flip_y=0.15, class_sep=1.0, random_state=0)
+    split = data.split_and_scale(X, y, test_fraction=0.9, seed=0, n_components=4)
+    blueprint = build_encoding("layered", 4, n_qubits=4, layers=3)
+    training = TrainingSettings(objective="centered_alignment", steps=150, learning_rate=0.1,
+                                bias_scale=0.1, validation_fraction=0.0, patience=0)
+
+    def gram(params, A, B=None):
+        return np.asarray(quantum_gram(blueprint, params, A, B), np.float64)
+
+    chosen = learn_and_select(blueprint, split.X_train, split.y_train, training,
+                              SelectionSettings(folds=4), seed=0, gram=gram)
+
+    def held_out(name):
+        p = chosen.params[name]
+        return precomputed_svm(gram(p, split.X_train), gram(p, split.X_test, split.X_train),
+                               split.y_train, split.y_test, seed=0).test_accuracy
+
+    untrained = held_out("untrained")
+    assert held_out("full/centered_alignment@150") < untrained - 0.02, \
+        "the setup no longer overfits; make it harder so the test keeps its teeth"
+    assert held_out(chosen.chosen) >= untrained - 0.02
+
+
+# --------------------------------------------------------------------------- trained kernel
+
+@pytest.mark.parametrize("kind", ["fidelity", "projected"])
+def test_training_optimizes_the_kernel_the_svm_uses(kind):
+    # the alignment in the training history equals an independent alignment of the Gram
+    # that the SVM gets (kernels.quantum_gram / kernels.projected_gram, float64 numpy)
+    split, blueprint, _ = small_problem(n=50)
+    settings_ = TrainingSettings(steps=5, kernel=kind, gamma=0.7, validation_fraction=0.0,
+                                 patience=0, objective="alignment")
+    result = train_encoding(blueprint, split.X_train, split.y_train, settings_, seed=1)
+    if kind == "projected":
+        K = np.asarray(projected_gram(blueprint, result.params, split.X_train, gamma=0.7))
+    else:
+        K = np.asarray(quantum_gram(blueprint, result.params, split.X_train))
+    Y = np.where(split.y_train[:, None] == split.y_train[None, :], 1.0, -1.0)
+    # kernel-target alignment (Cristianini et al., NIPS 2001), computed here with numpy
+    alignment = np.sum(K * Y) / (np.linalg.norm(K) * np.linalg.norm(Y))
+    row = result.history[result.best_step]
+    assert row["alignment"] == pytest.approx(alignment, rel=2e-4)
+
+
+TINY = ["--set", "data.samples=60", "--set", "training.steps=4", "--set",
+        "evaluation.repeats=2", "--set", "svm.cv_folds=2", "--set", "training.patience=0",
+        "--set", "selection.folds=2", "--set", "hardware.enabled=false", "--quiet"]
+
+
+@pytest.mark.parametrize("kind", ["fidelity", "projected"])
+def test_history_alignment_equals_the_summary_alignment_for_both_kernel_kinds(kind, tmp_path):
+    out = tmp_path / kind
+    code = main(["fit", "--qubits", "2", "--seed", "3", "--out", str(out), *TINY,
+                 "--set", f"encoding.kind={kind}", "--set", "training.validation_fraction=0",
+                 "--set", "selection.candidates=['full']", "--set", "selection.trajectory=[1.0]"])
+    assert code == 0
+    summary = json.loads((out / "summary.json").read_text())
+    with open(out / "history.csv") as stream:
+        history = list(csv.DictReader(stream))
+    full = next(c for c in summary["selection"]["candidates"] if c["scope"] == "full")
+    assert summary["training"]["reported_run"] == "full/centered_alignment"
+    # no validation part: the last step's parameters are the run's final ones
+    assert float(history[-1]["alignment"]) == pytest.approx(full["alignment"], rel=2e-4)
+    if summary["chosen_kernel"] == full["name"]:
+        assert summary["alignment"]["final"] == pytest.approx(full["alignment"])
+
+
+def test_fit_summary_lists_candidates_choice_and_corrected_comparisons(tmp_path):
+    out = tmp_path / "run"
+    assert main(["fit", "--qubits", "2", "--seed", "4", "--out", str(out), *TINY]) == 0
+    summary = json.loads((out / "summary.json").read_text())
+    sel = summary["selection"]
+    names = [c["name"] for c in sel["candidates"]]
+    assert names[0] == "untrained" and sel["chosen"] in names and sel["best"] in names
+    assert summary["chosen_kernel"] == sel["chosen"]
+    for c in sel["candidates"]:
+        assert len(c["cv_accuracy_folds"]) == sel["folds"] == 2
+        assert c["cv_accuracy_mean"] == pytest.approx(np.mean(c["cv_accuracy_folds"]))
+    sig = summary["significance"]
+    assert set(sig["comparisons"]) == {"learned_vs_untrained", "quantum_vs_rbf_svm",
+                                       "quantum_vs_linear_svm"}
+    assert "Holm" in sig["correction"] and len(sig["chosen_per_repeat"]) == 2
+    p = [sig["comparisons"][k]["p_value"] for k in sig["comparisons"]]
+    adjusted = holm_adjust(p)
+    assert [sig["comparisons"][k]["p_holm"] for k in sig["comparisons"]] == adjusted
+    # the main split is the first repeated split: its accuracies are the summary's
+    assert sig["per_repeat"]["quantum"][0] == summary["test_accuracy"]
+    assert sig["per_repeat"]["untrained"][0] == summary["untrained_test_accuracy"]
+    assert set(summary["timings"]) >= {"splits", "diagnostics", "artifacts"}
+
+
+@pytest.mark.parametrize("setting, fragment", [
+    ("selection.candidates=['bandwith']", "did you mean 'bandwidth'"),
+    ("selection.candidates=[]", "is empty"),
+    ("selection.objectives=['accuracy']", "unknown objective"),
+    ("selection.trajectory=[0]", "fractions in (0, 1]"),
+    ("selection.folds=40", "smallest class"),
+    ("selection.rule='lowest'", "one of"),
+])
+def test_bad_selection_settings_get_one_line_and_nothing_is_written(setting, fragment,
+                                                                      tmp_path, capsys):
+    out = tmp_path / "run"
+    code = main(["fit", "--qubits", "2", "--out", str(out), *TINY, "--set", setting])
+    err = capsys.readouterr().err.strip()
+    assert code == 2 and fragment in err and "Traceback" not in err
+    assert len(err.splitlines()) == 1 and not out.exists()
+
+
+def test_inner_folds_above_the_smallest_class_are_refused_by_the_library():
+    split, blueprint, gram = small_problem(n=20)
+    with pytest.raises(InvalidInputError, match="smallest class"):
+        learn_and_select(blueprint, split.X_train, split.y_train, TrainingSettings(steps=2),
+                         SelectionSettings(folds=12), seed=0, gram=gram)
