@@ -226,3 +226,42 @@ def test_blueprints_are_hashable_and_equal_by_value():
     b = encodings.build_encoding("layered", 3, layers=2)
     assert a == b and hash(a) == hash(b)
     assert a != encodings.build_encoding("layered", 3, layers=3)
+
+
+@pytest.mark.parametrize("family, options", [("layered", {"n_qubits": 3, "layers": 3}),
+                                             ("iqp", {"layers": 3, "pairs": "ring"})])
+@pytest.mark.parametrize("sharing", ["across_layers", "across_qubits"])
+def test_shared_weights_equal_the_unshared_circuit_with_tied_values(family, options, sharing):
+    # Independent check: copy each shared slot's value into every slot of the unshared
+    # circuit that it stands for; both circuits must then give the same Gram.
+    from hilbertune import build_encoding
+    from hilbertune.kernels import quantum_gram
+
+    free = build_encoding(family, 3, **options)
+    tied = build_encoding(family, 3, weight_sharing=sharing, **options)
+    layers = options["layers"]
+    assert tied.n_slots < free.n_slots
+    if sharing == "across_layers":
+        assert tied.n_slots * layers == free.n_slots
+    assert len(free.steps) == len(tied.steps)
+    rng = np.random.default_rng(3)
+    shared = {"weights": rng.normal(size=tied.n_slots).astype(np.float32),
+              "biases": rng.normal(size=tied.n_slots).astype(np.float32),
+              "log_bandwidth": np.float32(0.3)}
+    mapping = np.zeros(free.n_slots, dtype=int)
+    for a, b in zip(free.steps, tied.steps):
+        assert a.gate == b.gate and a.qubits == b.qubits
+        if a.angle is not None:
+            mapping[a.angle.slot] = b.angle.slot
+    expanded = {"weights": shared["weights"][mapping], "biases": shared["biases"][mapping],
+                "log_bandwidth": shared["log_bandwidth"]}
+    X = rng.uniform(-1, 1, size=(7, 3))
+    np.testing.assert_allclose(np.asarray(quantum_gram(tied, shared, X)),
+                               np.asarray(quantum_gram(free, expanded, X)), atol=2e-6)
+
+
+def test_unknown_weight_sharing_is_refused_with_a_hint():
+    from hilbertune import build_encoding
+
+    with pytest.raises(InvalidInputError, match="did you mean 'across_layers'"):
+        build_encoding("layered", 2, weight_sharing="across_layer")

@@ -50,6 +50,10 @@ SCHEMA = {
                       "entangling pattern of the layered encoding / pair pattern of iqp"),
         "entangler_gate": ("cz", str, _one_of("cz", "cnot"), "entangling gate (layered)"),
         "axes": (["y", "z"], list, None, "rotation axes per feature upload (layered)"),
+        "weight_sharing": ("none", str, _one_of("none", "across_layers", "across_qubits"),
+                           "trainable weights shared by a rotation's copies in every layer, or "
+                           "by all qubits of a layer (layered, iqp): fewer parameters for "
+                           "small data"),
         "axis": ("y", str, _one_of("x", "y", "z"), "rotation axis (angle)"),
         "copies": (1, int, _POSITIVE, "tensor copies (amplitude)"),
         "bandwidth": (0.0, float, ("in [0, 1e6]", lambda v: 0 <= v <= 1e6),

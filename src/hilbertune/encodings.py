@@ -15,6 +15,28 @@ from hilbertune.circuits import AngleRule, Blueprint, Step
 from hilbertune.errors import InvalidInputError
 
 ENTANGLERS = ("none", "linear", "ring", "all")
+SHARING = ("none", "across_layers", "across_qubits")
+
+
+class _Slots:
+    """Hands out trainable slots; rotations with the same sharing key share one slot."""
+
+    def __init__(self, sharing: str, initial: float):
+        if sharing not in SHARING:
+            close = difflib.get_close_matches(str(sharing), SHARING, n=1)
+            hint = f" (did you mean {close[0]!r}?)" if close else ""
+            raise InvalidInputError(f"unknown weight sharing {sharing!r}{hint}; use one of "
+                                    f"{', '.join(SHARING)}")
+        self.sharing, self.initial, self.weights, self.keys = sharing, initial, [], {}
+
+    def slot(self, layer: int, qubits: tuple, role: tuple) -> int:
+        """Slot of a rotation in ``layer`` on ``qubits``; ``role`` names what it uploads."""
+        key = {"none": (layer, qubits, role), "across_layers": (qubits, role),
+               "across_qubits": (layer, len(qubits), role[1:])}[self.sharing]
+        if key not in self.keys:
+            self.keys[key] = len(self.weights)
+            self.weights.append(self.initial)
+        return self.keys[key]
 
 
 def _check_positive(name, value, minimum=1):
@@ -55,39 +77,47 @@ def single_axis_rotations(n_features: int, *, axis: str = "y") -> Blueprint:
                      family="angle")
 
 
-def iqp_style(n_features: int, *, layers: int = 2, pairs: str = "all") -> Blueprint:
+def iqp_style(n_features: int, *, layers: int = 2, pairs: str = "all",
+              weight_sharing: str = "none") -> Blueprint:
     """IQP-style encoding (Havlicek et al., Nature 567, 209 (2019)).
 
     ``layers`` times: Hadamard on every qubit, then ``exp(i sum_i phi_i Z_i + i sum_(i,j)
     phi_ij Z_i Z_j)`` with ``phi_i = x_i`` and ``phi_ij = (pi - x_i)(pi - x_j)`` on the
     chosen pair pattern (features scaled by the bandwidth first). Each phase is trainable:
     RZ / ZZ angle ``w * phi + b`` with initial ``w = -2`` (since exp(i phi Z) = RZ(-2 phi)).
+    ``weight_sharing``: "none" (own w, b per gate), "across_layers" (a gate's w, b shared by
+    its copies in every layer) or "across_qubits" (one w, b for all RZ and one for all ZZ
+    of a layer): fewer trainable parameters for small data sets.
     """
     _check_positive("n_features", n_features)
     _check_positive("layers", layers)
     pair_list = _pairs(pairs, n_features)
-    steps, weights = [], []
-    for _ in range(layers):
+    slots = _Slots(weight_sharing, -2.0)
+    steps = []
+    for layer in range(layers):
         steps += [Step("h", (q,)) for q in range(n_features)]
         for q in range(n_features):
-            steps.append(Step("rz", (q,), AngleRule("feature", (q,), len(weights))))
-            weights.append(-2.0)
+            steps.append(Step("rz", (q,), AngleRule("feature", (q,),
+                                                    slots.slot(layer, (q,), ("rz", "z")))))
         for a, b in pair_list:
-            steps.append(Step("zz", (a, b), AngleRule("pair", (a, b), len(weights))))
-            weights.append(-2.0)
-    return Blueprint(n_features, n_features, tuple(steps), tuple(weights), family="iqp")
+            steps.append(Step("zz", (a, b), AngleRule("pair", (a, b),
+                                                      slots.slot(layer, (a, b), ("zz", "zz")))))
+    return Blueprint(n_features, n_features, tuple(steps), tuple(slots.weights), family="iqp")
 
 
 def reuploading_layers(n_features: int, *, n_qubits: int | None = None, layers: int = 2,
                        entangler: str = "ring", entangler_gate: str = "cz",
-                       axes: tuple = ("y", "z")) -> Blueprint:
+                       axes: tuple = ("y", "z"), weight_sharing: str = "none") -> Blueprint:
     """Layered trainable encoding with data re-uploading.
 
     Each layer: on every qubit, for each assigned feature and each axis, a rotation with
     angle ``w * c * x_f + b`` (own ``w``, ``b`` per rotation); then an entangling pattern
     (``none``, ``linear``, ``ring``, ``all``) of CZ or CNOT gates. With more qubits than
     features the features cycle over the qubits; with more features than qubits, qubit q
-    takes every feature f with f % n_qubits == q.
+    takes every feature f with f % n_qubits == q. ``weight_sharing``: "none" (own w, b per
+    rotation), "across_layers" (a rotation's w, b shared by the same qubit, feature and axis
+    in every layer: 1/layers of the parameters) or "across_qubits" (one w, b per layer and
+    axis for all qubits): fewer trainable parameters for small data sets.
     """
     _check_positive("n_features", n_features)
     n_qubits = n_features if n_qubits is None else n_qubits
@@ -103,17 +133,18 @@ def reuploading_layers(n_features: int, *, n_qubits: int | None = None, layers: 
         assigned = [[f for f in range(n_features) if f % n_qubits == q] for q in range(n_qubits)]
     else:
         assigned = [[q % n_features] for q in range(n_qubits)]
-    steps, weights = [], []
-    for _ in range(layers):
+    slots = _Slots(weight_sharing, 1.0)
+    steps = []
+    for layer in range(layers):
         for q in range(n_qubits):
             if axes[0] == "z":  # a Z rotation on |0> would be a global phase
                 steps.append(Step("h", (q,)))
             for f in assigned[q]:
-                for axis in axes:
-                    steps.append(Step("r" + axis, (q,), AngleRule("feature", (f,), len(weights))))
-                    weights.append(1.0)
+                for position, axis in enumerate(axes):
+                    slot = slots.slot(layer, (q,), (f, position, axis))
+                    steps.append(Step("r" + axis, (q,), AngleRule("feature", (f,), slot)))
         steps += [Step(entangler_gate, pair) for pair in pair_list]
-    return Blueprint(n_qubits, n_features, tuple(steps), tuple(weights), family="layered")
+    return Blueprint(n_qubits, n_features, tuple(steps), tuple(slots.weights), family="layered")
 
 
 def amplitude_state(n_features: int, *, copies: int = 1) -> Blueprint:

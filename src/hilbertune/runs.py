@@ -68,10 +68,11 @@ def build_blueprint(config: dict, n_features: int):
     family = enc["family"]
     options = {
         "angle": {"axis": enc["axis"]},
-        "iqp": {"layers": enc["layers"], "pairs": enc["entangler"]},
+        "iqp": {"layers": enc["layers"], "pairs": enc["entangler"],
+                "weight_sharing": enc["weight_sharing"]},
         "layered": {"n_qubits": enc["qubits"], "layers": enc["layers"],
                     "entangler": enc["entangler"], "entangler_gate": enc["entangler_gate"],
-                    "axes": tuple(enc["axes"])},
+                    "axes": tuple(enc["axes"]), "weight_sharing": enc["weight_sharing"]},
         "amplitude": {"copies": enc["copies"]},
         "basis": {},
     }[family]
