@@ -255,3 +255,24 @@ def test_inner_folds_above_the_smallest_class_are_refused_by_the_library():
     with pytest.raises(InvalidInputError, match="smallest class"):
         learn_and_select(blueprint, split.X_train, split.y_train, TrainingSettings(steps=2),
                          SelectionSettings(folds=12), seed=0, gram=gram)
+
+
+def test_rescaled_candidates_multiply_the_untrained_bandwidth_and_come_before_training():
+    blueprint = build_encoding("layered", 2, n_qubits=2, layers=1)
+    chosen = SelectionSettings(scopes=("rescaled", "full"), bandwidth_factors=(4.0, 0.5),
+                               trajectory=(1.0,))
+    candidates = candidates_for(blueprint, TrainingSettings(steps=8), chosen)
+    assert [c.name for c in candidates] == ["untrained", "rescaled x0.5", "rescaled x4",
+                                            "full/centered_alignment@8"]
+    split, blueprint, gram = small_problem()
+    result = learn_and_select(blueprint, split.X_train, split.y_train,
+                              TrainingSettings(steps=2), chosen._replace(folds=2), seed=0,
+                              gram=gram)
+    base = float(result.params["untrained"]["log_bandwidth"])
+    assert float(result.params["rescaled x4"]["log_bandwidth"]) == pytest.approx(
+        base + np.log(4.0), abs=1e-6)
+    np.testing.assert_array_equal(result.params["rescaled x0.5"]["weights"],
+                                  result.params["untrained"]["weights"])
+    # a frozen bandwidth cannot be rescaled: no such candidates
+    frozen = TrainingSettings(steps=8, freeze=("log_bandwidth",))
+    assert all(c.scope != "rescaled" for c in candidates_for(blueprint, frozen, chosen))

@@ -89,8 +89,12 @@ SCHEMA = {
     "selection": {
         "candidates": (["untrained", "bandwidth", "full"], list, None,
                        "kernels compared by inner cross-validation on the training part: "
-                       "'untrained' (always included), 'bandwidth' (only the bandwidth "
-                       "learned), 'full' (weights, biases and bandwidth learned)"),
+                       "'untrained' (always included), 'rescaled' (untrained with the "
+                       "bandwidth times each of selection.bandwidth_factors), 'bandwidth' "
+                       "(only the bandwidth learned), 'full' (weights, biases and bandwidth "
+                       "learned)"),
+        "bandwidth_factors": ([0.25, 0.5, 2.0, 4.0], list, None,
+                              "bandwidth factors of the 'rescaled' candidates"),
         "objectives": ([], list, None, "objectives of the learned candidates (alignment, "
                        "centered_alignment, ridge_loo, ridge_kfold); [] = training.objective"),
         "trajectory": ([0.25, 1.0], list, None, "fractions of training.steps at which full "
@@ -290,6 +294,11 @@ def check_selection(config: dict) -> None:
     if bad:
         raise InvalidInputError(f"selection.objectives names unknown objective(s) {bad}; use "
                                 f"some of {', '.join(OBJECTIVES)}")
+    factors = sel["bandwidth_factors"]
+    if any(isinstance(f, bool) or not isinstance(f, (int, float)) or not 0 < f < math.inf
+           or f == 1 for f in factors):
+        raise InvalidInputError(f"selection.bandwidth_factors must be positive numbers other "
+                                f"than 1, got {factors!r}")
     fractions = sel["trajectory"]
     if not fractions or any(isinstance(f, bool) or not isinstance(f, (int, float))
                             or not 0 < f <= 1 for f in fractions):

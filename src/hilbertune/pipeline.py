@@ -90,6 +90,7 @@ def settings_from_config(config: dict, n_features: int) -> FitSettings:
     selection = SelectionSettings(
         scopes=tuple(sel["candidates"]), objectives=tuple(sel["objectives"]),
         trajectory=tuple(sel["trajectory"]), folds=sel["folds"], rule=sel["rule"],
+        bandwidth_factors=tuple(float(f) for f in sel["bandwidth_factors"]),
         c_folds=min(3, config["svm"]["cv_folds"]), workers=1)
     return FitSettings(
         seed=config["seed"], test_fraction=config["data"]["test_fraction"],
@@ -325,7 +326,7 @@ def selection_summary(selection) -> dict:
     for s in selection.scores:
         c = s.candidate
         row = {"name": c.name, "scope": c.scope, "objective": c.objective or None,
-               "steps": c.steps, "description": _describe(c),
+               "steps": c.steps, "bandwidth_factor": c.factor, "description": _describe(c),
                "trainable_parameters": s.trainable_parameters,
                "cv_accuracy_mean": s.mean, "cv_accuracy_sd": s.sd, "cv_accuracy_se": s.se,
                "cv_accuracy_folds": list(s.fold_accuracies)}
@@ -347,6 +348,8 @@ def _describe(candidate) -> str:
     text = SCOPE_TEXT[candidate.scope]
     if candidate.scope == "untrained":
         return text
+    if candidate.scope == "rescaled":
+        return f"the untrained encoding with its bandwidth multiplied by {candidate.factor:g}"
     return f"{text}, objective {candidate.objective}, {candidate.steps} steps at most"
 
 

@@ -405,7 +405,7 @@ def _run_key(selection):
     """The training run whose history is written: the chosen candidate's, or else the one
     of the fully learned candidates (what learning did, even when it was not chosen)."""
     chosen = next(s.candidate for s in selection.scores if s.candidate.name == selection.chosen)
-    if chosen.scope != "untrained":
+    if chosen.scope in ("bandwidth", "full"):
         return f"{chosen.scope}/{chosen.objective}"
     for key in selection.runs:
         if key.startswith("full/"):

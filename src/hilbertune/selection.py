@@ -29,9 +29,11 @@ import numpy as np
 from hilbertune.circuits import PARAM_NAMES, Blueprint
 from hilbertune.errors import InvalidInputError
 
-SCOPES = ("untrained", "bandwidth", "full")
+SCOPES = ("untrained", "rescaled", "bandwidth", "full")
 RULES = ("one_standard_error", "best")
 SCOPE_TEXT = {"untrained": "the encoding at its initial parameters (nothing learned)",
+              "rescaled": "the untrained encoding with its bandwidth multiplied by a factor "
+                          "(a grid searched by inner CV, as the RBF SVM's gamma is)",
               "bandwidth": "only the bandwidth learned",
               "full": "weights, biases and bandwidth learned"}
 
@@ -39,7 +41,8 @@ SCOPE_TEXT = {"untrained": "the encoding at its initial parameters (nothing lear
 class SelectionSettings(NamedTuple):
     """What ``learn_and_select`` compares, and how (plain, hashable data)."""
 
-    scopes: tuple = SCOPES  # which of SCOPES are candidates ("untrained" is always added)
+    scopes: tuple = ("untrained", "bandwidth", "full")  # which of SCOPES are candidates
+    #                                                    ("untrained" is always added)
     objectives: tuple = ()  # objectives of the learned candidates; () = the training objective
     trajectory: tuple = (0.25, 1.0)  # fractions of training.steps at which full training is a
     #                                  candidate (early stopping on inner-CV accuracy)
@@ -48,15 +51,18 @@ class SelectionSettings(NamedTuple):
     c_grid: tuple = (0.01, 0.1, 1.0, 10.0, 100.0, 1000.0)  # SVM C values tuned in each fold
     c_folds: int = 3  # folds of the C search inside each inner fold
     workers: int = 1  # inner folds trained at the same time (threads)
+    bandwidth_factors: tuple = (0.25, 0.5, 2.0, 4.0)  # factors of the "rescaled" candidates
 
 
 class Candidate(NamedTuple):
     """One kernel that selection may hand to the SVM."""
 
-    name: str  # e.g. "untrained", "bandwidth/centered_alignment", "full/ridge_loo@15"
+    name: str  # e.g. "untrained", "rescaled x0.5", "bandwidth/centered_alignment",
+    #            "full/ridge_loo@15"
     scope: str  # one of SCOPES
-    objective: str  # "" for the untrained encoding
-    steps: int  # optimizer steps (the trajectory point); 0 for the untrained encoding
+    objective: str  # "" for the untrained and rescaled encodings
+    steps: int  # optimizer steps (the trajectory point); 0 when nothing is trained
+    factor: float = 1.0  # bandwidth factor of a "rescaled" candidate
 
 
 class CandidateScore(NamedTuple):
@@ -131,6 +137,9 @@ def check_settings(settings: SelectionSettings, training_objective: str = "") ->
                                 f"{list(settings.trajectory)!r}")
     if settings.folds < 2:
         raise InvalidInputError(f"selection needs at least 2 inner folds, got {settings.folds}")
+    if any(not (f > 0 and math.isfinite(f)) or f == 1 for f in settings.bandwidth_factors):
+        raise InvalidInputError(f"bandwidth factors must be positive numbers other than 1, got "
+                                f"{list(settings.bandwidth_factors)!r}")
     if settings.c_folds < 2 or not settings.c_grid:
         raise InvalidInputError("selection needs a non-empty C grid and at least 2 C folds")
 
@@ -143,6 +152,11 @@ def candidates_for(blueprint: Blueprint, training, settings: SelectionSettings) 
     """
     chosen_objectives = tuple(settings.objectives) or (training.objective,)
     out = [Candidate("untrained", "untrained", "", 0)]
+    if "rescaled" in settings.scopes and "log_bandwidth" not in (
+            set(blueprint.frozen) | set(training.freeze)):
+        # closest to the heuristic first: a smaller change is the simpler candidate
+        for factor in sorted(settings.bandwidth_factors, key=lambda f: abs(math.log(f))):
+            out.append(Candidate(f"rescaled x{factor:g}", "rescaled", "", 0, float(factor)))
     seen = {()}
     for scope in ("bandwidth", "full"):
         if scope not in settings.scopes:
@@ -164,6 +178,8 @@ def trainable_count(blueprint: Blueprint, candidate: Candidate, freeze=()) -> in
     """How many numbers a candidate learns."""
     if candidate.scope == "untrained":
         return 0
+    if candidate.scope == "rescaled":
+        return 1
     sizes = {"weights": blueprint.n_slots, "biases": blueprint.n_slots, "log_bandwidth": 1}
     return sum(sizes[n] for n in _trainable(blueprint, scope_freeze(candidate.scope, freeze)))
 
@@ -271,8 +287,15 @@ def learn_and_select(blueprint: Blueprint, X, y, training, settings: SelectionSe
     folds = inner_folds(y, settings.folds, seed)
     candidates = candidates_for(blueprint, training, settings)
     start = starting_params(blueprint, X, y, training, seed=seed)
+    fixed = {"untrained": start}
+    for c in candidates:
+        if c.scope == "rescaled":
+            fixed[c.name] = {**start, "log_bandwidth": np.asarray(
+                start["log_bandwidth"] + np.float32(math.log(c.factor)), np.float32)}
     runs = {}  # "scope/objective" -> (settings, snapshot steps)
-    for c in candidates[1:]:
+    for c in candidates:
+        if c.name in fixed:
+            continue
         key = f"{c.scope}/{c.objective}"
         steps = runs[key][1] + (c.steps,) if key in runs else (c.steps,)
         settings_c = training._replace(objective=c.objective, steps=max(steps),
@@ -281,7 +304,7 @@ def learn_and_select(blueprint: Blueprint, X, y, training, settings: SelectionSe
 
     def learn(rows, *, final=False):
         """Candidate name -> parameters learned on X[rows] (plus the training results)."""
-        params, results = {"untrained": start}, {}
+        params, results = dict(fixed), {}
         for key, (settings_c, steps) in runs.items():
             result = train_encoding(
                 blueprint, X[rows], y[rows], settings_c, seed=seed, params=start,
@@ -295,14 +318,14 @@ def learn_and_select(blueprint: Blueprint, X, y, training, settings: SelectionSe
                     params[c.name] = result.snapshots[c.steps]
         return params, results
 
-    untrained_gram = gram(start, X)
+    fixed_grams = {name: gram(params, X) for name, params in fixed.items()}
 
     def score_fold(k):
         train_rows, test_rows = folds[k]
         learned, _ = learn(train_rows)
         out = []
         for c in candidates:
-            K = untrained_gram if c.scope == "untrained" else gram(learned[c.name], X)
+            K = fixed_grams[c.name] if c.name in fixed else gram(learned[c.name], X)
             out.append(fold_accuracy(K, train_rows, test_rows, y, c_grid=settings.c_grid,
                                      c_folds=settings.c_folds, seed=seed + k))
         return out
