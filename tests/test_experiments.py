@@ -63,3 +63,22 @@ def test_scaling_and_accuracy_studies_run_and_write_their_results(tmp_path):
     assert {"quantum_untrained", "quantum_trained", "rbf_svm", "linear_svm"} <= set(accuracy)
     assert (tmp_path / "scaling_vs_samples.png").stat().st_size > 0
     assert (tmp_path / "accuracy_vs_qubits.png").stat().st_size > 0
+
+
+def test_accuracy_study_runs_resumes_and_replays_the_selection(tmp_path):
+    out = _run("accuracy_study.py", "--out", tmp_path)
+    raw = json.loads((tmp_path / "accuracy_study.json").read_text())
+    assert len(raw["entries"]) == 2 and "Cheapest of these" in out
+    for entry in raw["entries"]:
+        names = [c["name"] for c in entry["candidates"]]
+        assert names[0] == "untrained" and entry["chosen"] in names
+        assert all(0 <= c["test_accuracy"] <= 1 for c in entry["candidates"])
+    table = (tmp_path / "accuracy_study.md").read_text()
+    # the post-hoc replay of the full set reproduces learn_and_select's own choice
+    assert "in every run: yes" in table and "(invented)" in table
+    assert "says anything about quantum hardware" in table
+    assert (tmp_path / "accuracy_study.png").stat().st_size > 0
+    again = _run("accuracy_study.py", "--out", tmp_path)  # resume: nothing left to compute
+    assert " seed " not in again
+    assert json.loads((tmp_path / "accuracy_study.json").read_text())["entries"] == \
+        raw["entries"]

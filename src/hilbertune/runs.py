@@ -479,18 +479,25 @@ def hardware_estimate(config, blueprint, params, X_train, X_test, k_train, k_tes
 
 
 def summary_lines(summary: dict) -> list:
-    """A few plain lines for the terminal."""
+    """A few plain lines for the terminal: what was chosen, whether learning helped, and
+    how the quantum kernel compares with the classical ones."""
     base = summary.get("baselines", {})
     sig = summary.get("significance", {})
-    lines = [
-        f"dataset: {summary['dataset']['source']}",
-        f"alignment: {summary['alignment']['initial']:.3f} -> {summary['alignment']['final']:.3f}",
-        f"test accuracy: learned quantum {summary['test_accuracy']:.3f} | untrained quantum "
+    sel = summary.get("selection") or {}
+    lines = [f"dataset: {summary['dataset']['source']}"]
+    if sel:
+        lines.append(f"chosen kernel: {sel['chosen']} (inner-CV accuracy "
+                     f"{sel['cv_accuracy']:.3f} +- {sel['cv_accuracy_sd']:.3f} over "
+                     f"{sel['folds']} folds of the training part)")
+    lines += [
+        f"test accuracy: chosen quantum {summary['test_accuracy']:.3f} | untrained quantum "
         f"{summary['untrained_test_accuracy']:.3f} | tuned RBF "
         f"{base.get('rbf_svm', {}).get('test_accuracy', float('nan')):.3f} | linear "
         f"{base.get('linear_svm', {}).get('test_accuracy', float('nan')):.3f}",
-        f"verdict: {sig.get('verdict', 'n/a')}",
     ]
+    if sig.get("learning_verdict"):
+        lines.append(f"did learning help? {sig['learning_verdict']}")
+    lines.append(f"verdict: {sig.get('verdict', 'n/a')}")
     return lines
 
 
