@@ -44,12 +44,28 @@ def test_spectrum_is_descending_eigvalsh():
 
 def test_effective_dimension_of_identity_rank_one_and_two_blocks():
     # participation ratio (sum l)^2 / sum l^2: N for a flat spectrum, 1 for rank one
-    assert effective_dimension(np.eye(7)) == pytest.approx(7.0)
+    assert effective_dimension(np.eye(7), centered_gram=False) == pytest.approx(7.0)
+    # centered: H I H = H has N - 1 eigenvalues 1 and one 0 (H projects out 1)
+    assert effective_dimension(np.eye(7)) == pytest.approx(6.0)
     v = np.random.default_rng(1).normal(size=9)
-    assert effective_dimension(np.outer(v, v)) == pytest.approx(1.0)
+    assert effective_dimension(np.outer(v, v), centered_gram=False) == pytest.approx(1.0)
     # two equal blocks of ones: eigenvalues (3, 3, 0, ...) -> 36 / 18 = 2 (hand computation)
-    assert effective_dimension(scipy.linalg.block_diag(np.ones((3, 3)),
-                                                       np.ones((3, 3)))) == pytest.approx(2.0)
+    blocks = scipy.linalg.block_diag(np.ones((3, 3)), np.ones((3, 3)))
+    assert effective_dimension(blocks, centered_gram=False) == pytest.approx(2.0)
+    # centered, the two blocks differ only in their mean direction: rank one
+    assert effective_dimension(blocks) == pytest.approx(1.0)
+
+
+def test_centered_effective_dimension_matches_numpy_eigendecomposition_of_hkh():
+    # independent: H K H built with numpy and its eigenvalues from numpy.linalg.eigvalsh;
+    # centering after Cortes, Mohri & Rostamizadeh, JMLR 13, 795 (2012)
+    K = random_gram(30, 11, gamma=0.05) + 2.0  # a large constant part, as in issue 15
+    H = np.eye(30) - np.ones((30, 30)) / 30
+    values = np.clip(np.linalg.eigvalsh(H @ K @ H), 0, None)
+    expected = values.sum() ** 2 / np.sum(values ** 2)
+    assert effective_dimension(K) == pytest.approx(expected, rel=1e-9)
+    # the constant no longer dominates: uncentered the ratio is close to 1
+    assert effective_dimension(K, centered_gram=False) < 1.2 < 3.0 < effective_dimension(K)
 
 
 # --------------------------------------------------------------------------- concentration
@@ -274,7 +290,11 @@ def test_verdicts_in_plain_words_always_carry_the_caveat():
     noise = compare_accuracies(q, q + np.array([0.01, -0.02] * 5), 90, 30)
     assert better["p_value"] < 0.05 and "quantum kernel is significantly more" in \
         better["verdict"]
-    assert "classical baseline) is significantly more" in worse["verdict"]
+    assert worse["verdict"].startswith("The classical baseline is significantly more")
+    # issue 15 (d): the name is not repeated in parentheses
+    assert "(classical baseline)" not in worse["verdict"]
+    named = compare_accuracies(c, q, 90, 30, baseline_name="tuned RBF SVM")
+    assert named["verdict"].startswith("The tuned RBF SVM is significantly more accurate")
     assert noise["verdict"].startswith("No significant difference")
     for result in (better, worse, noise):
         assert result["verdict"].endswith(SIMULATION_CAVEAT)
