@@ -403,9 +403,7 @@ def _kernel_section(kernels: dict) -> str:
         ax.set_xticks([])
         ax.set_yticks([])
     fig.colorbar(image, ax=list(axes), shrink=0.8)
-    return ("<p>Training Gram matrices with rows and columns ordered by class: a good kernel "
-            "shows bright blocks on the diagonal.</p>" +
-            _figure_to_img(fig, "kernel heatmaps ordered by class"))
+    return _figure_to_img(fig, "kernel heatmaps ordered by class")
 
 
 def _spectra_section(kernels: dict) -> str:
@@ -416,7 +414,9 @@ def _spectra_section(kernels: dict) -> str:
     fig, ax = plt.subplots(figsize=(6, 3.4))
     for key in keys:
         values = np.clip(kernels[f"spectrum_{key}"], 1e-12, None)
-        ax.semilogy(np.arange(1, len(values) + 1), values / values.sum(), label=key)
+        label = {"initial": "untrained quantum kernel", "final": "chosen quantum kernel",
+                 "rbf": "tuned RBF kernel"}[key]
+        ax.semilogy(np.arange(1, len(values) + 1), values / values.sum(), label=label)
     ax.set_xlabel("eigenvalue index")
     ax.set_ylabel("eigenvalue / trace")
     ax.legend()
@@ -553,8 +553,8 @@ def _accuracy_section(summary: dict, head: dict) -> str:
         "Test accuracy of the chosen quantum kernel, the untrained quantum kernel and two "
         "classical SVMs tuned by cross-validation on the same training rows. One split is "
         "noisy, so the comparison that counts is the paired test over repeated splits "
-        f"(each learned anew on its own training part): {_esc(sig.get('test', 'n/a'))}, "
-        f"corrected for multiple comparisons by {_esc(head.get('correction') or 'n/a')}. "
+        f"(each learned anew on its own training part): {_esc(sig.get('test', 'n/a'))}; "
+        f"multiple-comparison correction: {_esc(head.get('correction') or 'n/a')}. "
         "A difference counts only when the adjusted p-value is below alpha.") + table +
         (_table(test_rows, ["comparison", "mean accuracy difference", "t statistic",
                             "degrees of freedom", "p-value", "adjusted p-value (Holm)",
