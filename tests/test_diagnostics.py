@@ -44,12 +44,28 @@ def test_spectrum_is_descending_eigvalsh():
 
 def test_effective_dimension_of_identity_rank_one_and_two_blocks():
     # participation ratio (sum l)^2 / sum l^2: N for a flat spectrum, 1 for rank one
-    assert effective_dimension(np.eye(7)) == pytest.approx(7.0)
+    assert effective_dimension(np.eye(7), centered_gram=False) == pytest.approx(7.0)
+    # centered: H I H = H has N - 1 eigenvalues 1 and one 0 (H projects out 1)
+    assert effective_dimension(np.eye(7)) == pytest.approx(6.0)
     v = np.random.default_rng(1).normal(size=9)
-    assert effective_dimension(np.outer(v, v)) == pytest.approx(1.0)
+    assert effective_dimension(np.outer(v, v), centered_gram=False) == pytest.approx(1.0)
     # two equal blocks of ones: eigenvalues (3, 3, 0, ...) -> 36 / 18 = 2 (hand computation)
-    assert effective_dimension(scipy.linalg.block_diag(np.ones((3, 3)),
-                                                       np.ones((3, 3)))) == pytest.approx(2.0)
+    blocks = scipy.linalg.block_diag(np.ones((3, 3)), np.ones((3, 3)))
+    assert effective_dimension(blocks, centered_gram=False) == pytest.approx(2.0)
+    # centered, the two blocks differ only in their mean direction: rank one
+    assert effective_dimension(blocks) == pytest.approx(1.0)
+
+
+def test_centered_effective_dimension_matches_numpy_eigendecomposition_of_hkh():
+    # independent: H K H built with numpy and its eigenvalues from numpy.linalg.eigvalsh;
+    # centering after Cortes, Mohri & Rostamizadeh, JMLR 13, 795 (2012)
+    K = random_gram(30, 11, gamma=0.05) + 2.0  # a large constant part, as in issue 15
+    H = np.eye(30) - np.ones((30, 30)) / 30
+    values = np.clip(np.linalg.eigvalsh(H @ K @ H), 0, None)
+    expected = values.sum() ** 2 / np.sum(values ** 2)
+    assert effective_dimension(K) == pytest.approx(expected, rel=1e-9)
+    # the constant no longer dominates: uncentered the ratio is close to 1
+    assert effective_dimension(K, centered_gram=False) < 1.2 < 3.0 < effective_dimension(K)
 
 
 # --------------------------------------------------------------------------- concentration
@@ -274,7 +290,11 @@ def test_verdicts_in_plain_words_always_carry_the_caveat():
     noise = compare_accuracies(q, q + np.array([0.01, -0.02] * 5), 90, 30)
     assert better["p_value"] < 0.05 and "quantum kernel is significantly more" in \
         better["verdict"]
-    assert "classical baseline) is significantly more" in worse["verdict"]
+    assert worse["verdict"].startswith("The classical baseline is significantly more")
+    # issue 15 (d): the name is not repeated in parentheses
+    assert "(classical baseline)" not in worse["verdict"]
+    named = compare_accuracies(c, q, 90, 30, baseline_name="tuned RBF SVM")
+    assert named["verdict"].startswith("The tuned RBF SVM is significantly more accurate")
     assert noise["verdict"].startswith("No significant difference")
     for result in (better, worse, noise):
         assert result["verdict"].endswith(SIMULATION_CAVEAT)
@@ -355,3 +375,125 @@ def test_geometric_difference_survives_the_degenerate_pair_that_broke_lapack():
     X = np.random.default_rng(508).normal(size=(10, 2))
     K = rbf_kernel(X, gamma=4.375)
     assert geometric_difference(K, K) == pytest.approx(1.0, abs=1e-9)
+
+
+# --------------------------------------------------------------------------- issue 15 (a)
+
+def _psd_sqrt(K):
+    values, vectors = np.linalg.eigh(K)
+    return (vectors * np.sqrt(np.clip(values, 0, None))) @ vectors.T
+
+
+def direct_regularized_g(Kq, Kc, lam):
+    """Huang et al., Nat. Commun. 12, 2631 (2021), regularized g and training-error term
+    (from memory), written out with numpy matrix square roots and an explicit inverse."""
+    n = len(Kq)
+    Kq = Kq * n / np.trace(Kq)
+    Kc = Kc * n / np.trace(Kc)
+    root_q, root_c = _psd_sqrt(Kq), _psd_sqrt(Kc)
+    R = np.linalg.inv(Kc + lam * np.eye(n))
+    g = math.sqrt(np.linalg.norm(root_q @ root_c @ R @ R @ root_c @ root_q, ord=2))
+    error = lam * math.sqrt(np.linalg.norm(root_q @ R @ R @ root_q, ord=2))
+    return g, error
+
+
+def test_geometric_difference_curve_matches_numpy_matrix_functions():
+    from hilbertune.diagnostics import geometric_difference_curve
+
+    Kq = random_gram(25, 5, gamma=2.0)
+    Kc = random_gram(25, 5, gamma=0.2)
+    result = geometric_difference_curve(Kq, Kc, lambdas=(1e-4, 1e-2, 1.0))
+    for point in result["curve"]:
+        g, error = direct_regularized_g(Kq, Kc, point["lambda"])
+        assert point["g"] == pytest.approx(g, rel=1e-6)
+        assert point["training_error_bound"] == pytest.approx(error, rel=1e-6)
+    # larger lambda: smaller g, larger training error (the trade-off the curve shows)
+    gs = [p["g"] for p in result["curve"]]
+    errors = [p["training_error_bound"] for p in result["curve"]]
+    assert gs == sorted(gs, reverse=True) and errors == sorted(errors)
+    # the choice: the largest lambda whose training error stays within the limit
+    fitting = [p["lambda"] for p in result["curve"] if p["training_error_bound"] <= 0.1]
+    assert result["chosen_lambda"] == (fitting[-1] if fitting else 1e-4)
+    assert result["g"] == next(p["g"] for p in result["curve"]
+                               if p["lambda"] == result["chosen_lambda"])
+
+
+def test_classical_training_error_is_that_of_an_explicit_kernel_ridge_fit():
+    from hilbertune.diagnostics import geometric_difference_curve
+
+    X = np.random.default_rng(3).normal(size=(30, 2))
+    y = np.where(X[:, 0] * X[:, 1] > 0, "a", "b")
+    Kc = rbf_kernel(X, gamma=0.5)
+    result = geometric_difference_curve(rbf_kernel(X, gamma=3.0), Kc, y=y,
+                                        lambdas=(1e-3, 1e1))
+    Kn = Kc * 30 / np.trace(Kc)
+    for point in result["curve"]:
+        # kernel ridge regression on +-1 targets, f = K (K + lambda I)^-1 t (common practice)
+        t = np.where(y == "b", 1.0, -1.0)
+        f = Kn @ np.linalg.solve(Kn + point["lambda"] * np.eye(30), t)
+        assert point["classical_training_error"] == pytest.approx(np.mean(np.sign(f) != t))
+    assert result["curve"][0]["classical_training_error"] < \
+        result["curve"][1]["classical_training_error"]
+
+
+def test_a_near_singular_classical_gram_is_flagged_by_its_eigenvalues():
+    from hilbertune.diagnostics import classical_gram_health
+
+    X = np.random.default_rng(0).normal(size=(40, 3))
+    smooth = rbf_kernel(X, gamma=0.01)  # nearly rank one: almost all eigenvalues tiny
+    values = np.linalg.eigvalsh(smooth * 40 / np.trace(smooth))  # numpy, independent
+    health = classical_gram_health(smooth, 1e-3)
+    assert health["eigenvalues_below_lambda"] == int(np.sum(values < 1e-3)) > 20
+    assert health["near_singular"] and "nearly singular" in health["warning"]
+    sharp = classical_gram_health(rbf_kernel(X, gamma=5.0), 1e-3)
+    assert not sharp["near_singular"] and sharp["warning"] == ""
+
+
+def test_run_diagnostics_reports_the_curve_centered_dimension_and_plain_json():
+    from hilbertune.diagnostics import run_diagnostics
+
+    X = np.random.default_rng(4).normal(size=(24, 2))
+    y = (X[:, 0] > 0).astype(int)
+    k0, k1, kc = rbf_kernel(X, gamma=1.0), rbf_kernel(X, gamma=4.0), rbf_kernel(X, gamma=0.3)
+    summary, spectra = run_diagnostics(k0, k1, kc, y, 3, shots=500)
+    geo = summary["geometric_difference"]
+    curve = geo["curves"]["learned_vs_rbf"]
+    assert geo["regularizer"] == curve["chosen_lambda"]
+    assert geo["learned_vs_rbf"] == pytest.approx(
+        direct_regularized_g(k1, kc, geo["regularizer"])[0], rel=1e-6)
+    assert len(curve["curve"]) >= 5 and "classical_training_error" in curve["curve"][0]
+    eff = summary["effective_dimension"]
+    assert "centered" in eff["computed_on"]
+    assert eff["rbf"] == pytest.approx(effective_dimension(kc))
+    assert eff["uncentered"]["rbf"] == pytest.approx(effective_dimension(kc,
+                                                                         centered_gram=False))
+    np.testing.assert_allclose(spectra["final"], np.linalg.eigvalsh(k1)[::-1], atol=1e-10)
+    json.dumps(summary, allow_nan=False)
+
+
+# --------------------------------------------------------------------------- issue 15 (c)
+
+def test_projected_concentration_uses_the_shot_noise_of_pauli_expectations():
+    # independent Monte Carlo: sample each expectation as a mean of +-1 outcomes with numpy
+    # and recompute exp(-gamma/2 sum (a - b)^2) (Huang et al. 2021 projected kernel)
+    rng = np.random.default_rng(7)
+    E = rng.uniform(-0.9, 0.9, size=(12, 2, 3))
+    gamma, shots = 0.1, 200  # a case where the binomial rule would be off by 2x
+    flat = E.reshape(12, -1)
+    K = np.exp(-gamma / 2 * ((flat[:, None] - flat[None]) ** 2).sum(-1))
+    samples = []
+    for _ in range(3000):
+        est = 2 * rng.binomial(shots, (1 + flat) / 2) / shots - 1
+        samples.append(np.exp(-gamma / 2 * ((est[:, None] - est[None]) ** 2).sum(-1)))
+    mc_std = np.std(samples, axis=0)
+    off = ~np.eye(12, dtype=bool)
+    result = concentration(K, 2, shots=shots, kind="projected", gamma=gamma, expectations=E)
+    rms_mc = math.sqrt(np.mean(mc_std[off] ** 2))
+    assert result["shot_noise_std"] == pytest.approx(rms_mc, rel=0.05)
+    # the Gram-only bound (no expectations) is never below it
+    bound = concentration(K, 2, shots=shots, kind="projected", gamma=gamma)
+    assert bound["shot_noise_std"] >= result["shot_noise_std"]
+    assert "Pauli expectations" in result["rule"]
+    # and it is not the fidelity rule's binomial term at the mean value
+    m = K[off].mean()
+    assert result["shot_noise_std"] < 0.6 * math.sqrt(m * (1 - m) / shots)

@@ -594,3 +594,151 @@ def test_density_matrix_memory_is_checked_before_allocating():
     X = np.zeros((20000, 8))
     with pytest.raises(ResourceLimitError, match="GiB"):
         density_matrix_kernel(blueprint, initial_params(blueprint), X, X[:2])
+
+
+# --------------------------------------------------------------------------- projected kernels
+# (issue 15 c: a projected kernel is measured as single-qubit Pauli expectations)
+
+def _dense_bloch_vectors(bp, params, x, error, dense, *, final_flip=0.0):
+    """Reference: the encoding as full density matrices (conftest simulator), a GLOBAL
+    depolarizing channel (1 - e) rho + e I / 2^n after every gate (Nielsen & Chuang 2000,
+    Eq. 8.102 on all qubits), then <P_q> = Tr(rho P_q) with P_q embedded by np.kron."""
+    n = bp.n_qubits
+    rho = np.zeros((2**n, 2**n), complex)
+    rho[0, 0] = 1
+    for step in bp.steps:
+        angle = rule_angle(step.angle, params, x) if step.angle is not None else 0.0
+        G = dense.gate(step, angle, n)
+        e = error[len(step.qubits) - 1]
+        rho = (1 - e) * (G @ rho @ G.conj().T) + e * np.eye(2**n) / 2**n
+    return np.array([[np.trace(rho @ dense.embed({q: P}, n)).real
+                      for P in (dense.X, dense.Y, dense.Z)] for q in range(n)])
+
+
+def test_global_depolarizing_shrinks_every_bloch_vector_by_one_minus_p(dense, rng):
+    bp = build_encoding("iqp", 3, layers=2)
+    params = dense.random_params(bp, rng)
+    X = rng.uniform(-1, 1, size=(3, 3))
+    e1, e2 = 0.01, 0.05
+    exact = np.asarray(hw.density_matrix_expectations(bp, params, X))
+    p = hw.projected_depolarizing(bp, one_qubit_error=e1, two_qubit_error=e2)
+    shrink = hw.projected_shrink(p, n_qubits=3)
+    np.testing.assert_allclose(shrink, 1 - p)  # no basis rotation noise, no readout error
+    for i, x in enumerate(X):
+        reference = _dense_bloch_vectors(bp, params, x, (e1, e2), dense)
+        np.testing.assert_allclose((1 - p) * exact[i], reference, atol=2e-6)  # float32 angles
+    # the simulator in hardware.py agrees with the dense reference and the formula
+    noisy = hw.density_matrix_expectations(bp, params, X, one_qubit_error=e1,
+                                           two_qubit_error=e2, channel="global")
+    np.testing.assert_allclose(noisy, (1 - p) * exact, atol=1e-8)
+    # its noiseless expectations are the ones the projected kernel is built from
+    from hilbertune.kernels import encoding_expectations
+    np.testing.assert_allclose(exact, np.asarray(encoding_expectations(bp, params, X)),
+                               atol=2e-5)
+    # local channels on an entangling circuit are not exactly the global model, but close
+    local = hw.density_matrix_expectations(bp, params, X, one_qubit_error=e1,
+                                           two_qubit_error=e2)
+    assert 1e-6 < np.abs(local - (1 - p) * exact).max() < 0.1
+
+
+def test_basis_rotations_and_readout_flips_shrink_as_derived():
+    # one global channel e1 per basis-change rotation (one per qubit) for X and Y; a bit
+    # read wrongly with probability e: P(+1) -> (1 - e) P(+1) + e (1 - P(+1)), so
+    # <P> = 2 P(+1) - 1 -> (1 - 2e) <P>  (exact, written out here)
+    p, e1, e, n = 0.2, 0.01, 0.03, 4
+    shrink = hw.projected_shrink(p, n_qubits=n, one_qubit_error=e1, readout_error=e)
+    plus = 0.5 * (1 + 0.6)
+    flipped = (1 - e) * plus + e * (1 - plus)
+    assert (2 * flipped - 1) / 0.6 == pytest.approx(1 - 2 * e)
+    np.testing.assert_allclose(shrink, (1 - p) * (1 - 2 * e) * np.array(
+        [(1 - e1) ** n, (1 - e1) ** n, 1.0]))
+
+
+def test_sampled_expectations_are_binomial_means_of_plus_minus_one_outcomes():
+    E = np.array([[[0.5, -0.2, 0.9]]])
+    shots = 50
+    draws = np.stack([hw.sample_expectations(E, shots, seed=s) for s in range(4000)])
+    # <P>_hat = 2 m / s - 1, m ~ Binomial(s, (1 + <P>) / 2): mean <P>, var (1 - <P>^2) / s
+    np.testing.assert_allclose(draws.mean(0), E, atol=0.01)
+    np.testing.assert_allclose(draws.var(0), (1 - E**2) / shots, rtol=0.1)
+    np.testing.assert_array_equal(hw.sample_expectations(E, shots, seed=3),
+                                  hw.sample_expectations(E, shots, seed=3))
+
+
+def test_projected_entry_variance_matches_monte_carlo_with_device_noise():
+    rng = np.random.default_rng(2)
+    E = rng.uniform(-1, 1, size=(6, 2, 3))
+    gamma, shots, shrink = 0.7, 400, np.array([0.8, 0.8, 0.9])
+    samples = []
+    for s in range(3000):
+        est = hw.sample_expectations(E, shots, seed=s, shrink=shrink).reshape(6, -1)
+        samples.append(np.exp(-gamma / 2 * ((est[:, None] - est[None]) ** 2).sum(-1)))
+    variance = hw.projected_entry_variance(E, gamma=gamma, shots=shots, shrink=shrink)
+    off = ~np.eye(6, dtype=bool)
+    np.testing.assert_allclose(variance[off], np.var(samples, axis=0)[off], rtol=0.15)
+    assert np.all(np.diag(variance) == 0) and np.all(np.var(samples, axis=0).diagonal() == 0)
+    # the Gram-only bound holds
+    K = hw.projected_kernel_from_expectations(E * shrink, gamma=gamma)
+    bound = hw.projected_variance_bound(K, gamma=gamma, n_qubits=2, shots=shots)
+    assert np.all(variance[off] <= bound[off] * (1 + 1e-12))
+
+
+def test_projected_estimate_counts_three_circuits_per_sample(iris_kernels):
+    bp, params, X_train, X_test, _, _, y_train, y_test = iris_kernels
+    from hilbertune.kernels import projected_gram
+
+    settings = {"estimator": "inversion_test", "shots_grid": [100, 1000], "tolerance": 0.05,
+                "one_qubit_error": 0.001, "two_qubit_error": 0.01, "readout_error": 0.02}
+    k_train = np.asarray(projected_gram(bp, params, X_train, gamma=0.5), float)
+    k_test = np.asarray(projected_gram(bp, params, X_test, X_train, gamma=0.5), float)
+    out = hw.run_estimate(settings, bp, params, X_train, X_test, k_train, k_test, y_train,
+                          y_test, C=1.0, seed=0, kind="projected", gamma=0.5)
+    json.dumps(out, allow_nan=False)
+    budget = out["shot_budget"]
+    n, n_test = len(y_train), len(y_test)
+    # 3 bases per sample, 3 (N + N_test) circuits, not one circuit per pair
+    assert out["estimator"] == "pauli_expectations"
+    assert budget["circuits"] == {"train": 3 * n, "prediction": 3 * n_test}
+    assert [p["total_executions"] for p in budget["curve"]] == [3 * (n + n_test) * s
+                                                                for s in (100, 1000)]
+    # the exact reference is the projected kernel the SVM used
+    from sklearn.svm import SVC
+    model = SVC(kernel="precomputed", C=1.0).fit(k_train, y_train)
+    assert budget["exact"]["test_accuracy"] == pytest.approx(model.score(k_test, y_test))
+    noise = out["device_noise"]
+    p = hw.projected_depolarizing(bp, one_qubit_error=0.001, two_qubit_error=0.01)
+    assert noise["depolarizing_probability"] == pytest.approx(p)
+    assert noise["shrink_per_basis"]["Z"] == pytest.approx((1 - p) * (1 - 2 * 0.02))
+    if noise["empirical_shots_with_noise"] is not None:
+        assert noise["total_executions_with_noise"] == \
+            3 * (n + n_test) * noise["empirical_shots_with_noise"]
+    # the fidelity path keeps one circuit per kernel entry
+    k_f = np.asarray(quantum_gram(bp, params, X_train), float)
+    k_ft = np.asarray(quantum_gram(bp, params, X_test, X_train), float)
+    fid = hw.run_estimate(settings, bp, params, X_train, X_test, k_f, k_ft, y_train, y_test,
+                          C=1.0, seed=0)
+    assert fid["shot_budget"]["entries"] == {"train": n * (n - 1) // 2,
+                                             "prediction": n * n_test}
+    assert fid["kind"] == "fidelity"
+
+
+def test_iris_example_needs_450_projected_circuits():
+    # issue 15: the whole iris data (150 rows) needs 3 x 150 = 450 circuits, not 10185
+    X, y = load_iris(return_X_y=True)
+    bp = build_encoding("angle", 4)
+    params = initial_params(bp, bandwidth=0.3)
+    from hilbertune.kernels import encoding_expectations
+    E = np.asarray(encoding_expectations(bp, params, X), float)
+    out = hw.projected_shot_budget(E[:105], E[105:], y[:105], y[105:], gamma=1.0, seed=0,
+                                   shots_grid=(10,), repeats=1)
+    assert sum(out["circuits"].values()) == 450
+
+
+def test_projected_bad_input_is_refused():
+    with pytest.raises(InvalidInputError, match="shape"):
+        hw.projected_entry_variance(np.zeros((3, 2)), gamma=1.0, shots=10)
+    with pytest.raises(InvalidInputError, match="gamma"):
+        hw.projected_kernel_from_expectations(np.zeros((3, 2, 3)), gamma=-1.0)
+    with pytest.raises(InvalidInputError, match="kind"):
+        hw.run_estimate({}, None, None, None, None, None, None, None, None, C=1.0, seed=0,
+                        kind="fidelty")

@@ -56,8 +56,22 @@ def spectrum(K) -> np.ndarray:
     return scipy.linalg.eigvalsh(_square(K))[::-1]
 
 
-def effective_dimension(K) -> float:
+def centered(K) -> np.ndarray:
+    """The centered Gram ``H K H`` with ``H = I - 11^T / N`` (Cortes, Mohri & Rostamizadeh,
+    JMLR 13, 795 (2012)): the Gram of the features after their mean is removed."""
+    K = _square(K)
+    row_means = K.mean(axis=0)
+    # H K H = K - 1 r^T - r 1^T + mean(K), with r the column means (K symmetric)
+    return K - row_means[None, :] - row_means[:, None] + K.mean()
+
+
+def effective_dimension(K, *, centered_gram: bool = True) -> float:
     """Participation ratio of the spectrum, ``(sum_i l_i)^2 / sum_i l_i^2``.
+
+    Computed on the centered Gram ``H K H`` by default: an uncentered Gram of a kernel with
+    a large mean value (a tuned RBF Gram, a fidelity Gram of nearly identical states) has
+    one eigenvalue that carries that constant, and it dominates the ratio (issue 15: tuned
+    RBF 1.06 uncentered, 2.62 centered). ``centered_gram=False`` gives the old number.
 
     Between 1 (one eigenvalue carries everything) and N (flat spectrum, e.g. the identity):
     the number of directions the kernel effectively uses. Negative eigenvalues from
@@ -66,17 +80,19 @@ def effective_dimension(K) -> float:
     dimensionality of neural data (Gao et al., bioRxiv 214262 (2017), from memory) — not
     the "effective dimension" of Huang et al. (2021) or of Abbas et al. (2021).
     """
-    eigenvalues = np.clip(spectrum(K), 0.0, None)
+    eigenvalues = np.clip(spectrum(centered(K) if centered_gram else K), 0.0, None)
     total = eigenvalues.sum()
     if total <= 0:
-        raise InvalidInputError("the Gram matrix has no positive eigenvalue; the kernel is "
-                                "zero — check the encoding and the features")
+        raise InvalidInputError("the Gram matrix has no positive eigenvalue (after centering "
+                                "when centered_gram=True); the kernel is constant — check "
+                                "the encoding and the features")
     return float(total ** 2 / np.sum(eigenvalues ** 2))
 
 
 # --------------------------------------------------------------------------- concentration
 
-def concentration(K, n_qubits: int, shots: int = 1000) -> dict:
+def concentration(K, n_qubits: int, shots: int = 1000, *, kind: str = "fidelity",
+                  gamma: float = 1.0, expectations=None) -> dict:
     """Is the kernel exponentially concentrated for a given number of shots?
 
     Thanasilp, Wang, Cerezo, Holmes, Nat. Commun. 15, 5200 (2024): when the off-diagonal
@@ -93,10 +109,20 @@ def concentration(K, n_qubits: int, shots: int = 1000) -> dict:
     says whether values sit near ``1/2**n`` (nearly orthogonal states: lower the
     bandwidth or the qubit count) or near 1 (nearly identical states: raise the bandwidth).
 
+    A **projected** kernel (``kind="projected"``) is not estimated by counting one outcome:
+    each sample's single-qubit Pauli expectations are measured (``shots`` per basis) and
+    the kernel is computed from them. Its shot noise is then the root-mean-square of the
+    per-entry standard deviation of ``hardware.projected_entry_variance`` (delta method
+    through ``exp(-gamma sum ||.||^2)``), from the Pauli ``expectations`` [N, n, 3] when
+    given, otherwise from its worst-case bound (every expectation at 0, maximal variance),
+    which needs only K, gamma and n.
+
     Args:
       K: float array [N, N], the train Gram (N >= 2).
       n_qubits: qubits of the encoding.
-      shots: shots per kernel entry on hardware.
+      shots: shots per kernel entry (fidelity) or per measurement basis (projected).
+      kind: "fidelity" or "projected"; gamma: the projected kernel's bandwidth.
+      expectations: optional float array [N, n_qubits, 3] (projected only).
 
     Returns:
       JSON-able dict: mean_offdiagonal, variance_offdiagonal, std_offdiagonal,
@@ -115,12 +141,40 @@ def concentration(K, n_qubits: int, shots: int = 1000) -> dict:
     mean = float(values.mean())
     variance = float(values.var())
     spread = math.sqrt(variance)
-    m = min(max(mean, 0.0), 1.0)
-    noise = math.sqrt(m * (1.0 - m) / shots)  # binomial std of a frequency estimate
+    if kind not in ("fidelity", "projected"):
+        raise InvalidInputError(f"kind must be 'fidelity' or 'projected', got {kind!r}")
+    if kind == "projected":
+        from hilbertune.hardware import projected_entry_variance, projected_variance_bound
+
+        off = ~np.eye(K.shape[0], dtype=bool)
+        if expectations is None:
+            entry_variance = projected_variance_bound(K, gamma=gamma, n_qubits=int(n_qubits),
+                                                      shots=int(shots))
+            source = "worst-case bound (all expectations 0)"
+        else:
+            entry_variance = projected_entry_variance(expectations, None, gamma=gamma,
+                                                      shots=int(shots))
+            source = "measured Pauli expectations"
+        noise = math.sqrt(float(np.mean(entry_variance[off])))
+        rule = ("concentrated when std of off-diagonal values < root-mean-square shot-noise "
+                "std of an entry estimated from Pauli expectations (delta method, "
+                f"{source}; shots per basis)")
+    else:
+        m = min(max(mean, 0.0), 1.0)
+        noise = math.sqrt(m * (1.0 - m) / shots)  # binomial std of a frequency estimate
+        rule = "concentrated when std of off-diagonal values < sqrt(m(1-m)/shots)"
     random_value = 2.0 ** (-int(n_qubits))
     concentrated = bool(spread < noise)
     warning = ""
-    if concentrated:
+    if concentrated and kind == "projected":
+        cause = (f"the kernel values sit near {mean:.3g}; " + (
+            "lower gamma (the projected kernel's bandwidth) so that they spread out"
+            if mean < 0.5 else "raise gamma so that they spread out"))
+        warning = (f"Kernel values are concentrated: their spread ({spread:.3g}) is below "
+                   f"the shot noise of one estimate from Pauli expectations with {shots} "
+                   f"shots per basis ({noise:.3g}), so on hardware the Gram would be mostly "
+                   f"noise; {cause}.")
+    elif concentrated:
         if mean < 0.5:
             cause = (f"the states are nearly orthogonal (mean {mean:.3g}, random states give "
                      f"{random_value:.3g}); lower the bandwidth or use fewer qubits")
@@ -134,8 +188,7 @@ def concentration(K, n_qubits: int, shots: int = 1000) -> dict:
             "std_offdiagonal": spread, "random_state_value": random_value,
             "shots": int(shots), "shot_noise_std": noise,
             "spread_to_noise": (spread / noise) if noise > 0 else math.inf,
-            "concentrated": concentrated, "warning": warning,
-            "rule": "concentrated when std of off-diagonal values < sqrt(m(1-m)/shots)"}
+            "concentrated": concentrated, "warning": warning, "kind": kind, "rule": rule}
 
 
 # --------------------------------------------------------------------------- geometry
@@ -188,6 +241,140 @@ def geometric_difference(K_quantum, K_classical, *, reg: float = 1e-3) -> float:
     whitened = scipy.linalg.solve_triangular(lower, half.T, lower=True)
     largest = np.linalg.eigvalsh(0.5 * (whitened + whitened.T))[-1]
     return float(math.sqrt(max(float(largest), 0.0)))
+
+
+#: Regularizers of the geometric-difference curve, relative to an average eigenvalue of 1
+#: (both Grams are trace-normalized to N).
+LAMBDA_GRID = (1e-5, 1e-4, 1e-3, 1e-2, 1e-1, 1.0)
+
+#: The classical model's worst-case training error allowed at the chosen regularizer (ours:
+#: Huang et al. ask only that it be small).
+TRAINING_ERROR_LIMIT = 0.1
+
+#: A classical Gram is flagged near-singular above this condition number (ours).
+NEAR_SINGULAR_CONDITION = 1e8
+
+
+def _trace_normalized(K, name):
+    n = K.shape[0]
+    if np.trace(K) <= 0:
+        raise InvalidInputError(f"{name} has non-positive trace; it is not a kernel Gram")
+    return K * (n / np.trace(K))
+
+
+def geometric_difference_curve(K_quantum, K_classical, *, y=None, lambdas=LAMBDA_GRID,
+                               error_limit: float = TRAINING_ERROR_LIMIT) -> dict:
+    """Regularized geometric difference over a range of lambda, with the classical model's
+    training error, and lambda chosen where that error stays small.
+
+    Huang, Broughton, Mohseni, Babbush, Boixo, Neven, McClean, Nat. Commun. 12, 2631 (2021),
+    Methods (regularized geometric difference; formulas written from memory): with both
+    Grams trace-normalized to N and ``R = (Kc + lambda I)^-1``,
+
+        g(lambda)         = sqrt(|| sqrt(Kq) sqrt(Kc) R^2 sqrt(Kc) sqrt(Kq) ||_2)
+        e_train(lambda)   = lambda sqrt(|| sqrt(Kq) R^2 sqrt(Kq) ||_2)
+
+    ``e_train`` bounds the training error of the classical kernel-ridge model on labels the
+    quantum kernel fits; g bounds its prediction error. Small lambda: small training error,
+    large g (at lambda -> 0, g -> the unregularized g); large lambda: g shrinks because the
+    classical model no longer fits its training data. They report g together with that
+    error and pick lambda so that it stays small; we take the **largest lambda of the grid
+    with e_train <= error_limit** (0.1, our choice), or the smallest lambda when none is.
+
+    Computed with one eigendecomposition of Kc (``numpy.linalg.eigh``): with ``Kc = V c V^T``
+    and ``W = V^T Kq V``, ``g^2 = lambda_max(D W D)`` for ``D = diag(sqrt(c) / (c + lambda))``
+    and ``e_train^2 = lambda^2 lambda_max(D' W D')`` for ``D' = diag(1 / (c + lambda))``
+    (``||A B A||_2 = ||B^1/2 A^2 B^1/2||_2`` for PSD B).
+
+    Args:
+      K_quantum, K_classical: float arrays [N, N] on the same training samples.
+      y: optional training labels [N]; then each point also holds the actual training error
+        of the classical kernel-ridge classifier (one-vs-rest targets +-1,
+        ``f = Kc (Kc + lambda I)^-1 Y``, fraction of rows whose largest output is not their
+        class).
+      lambdas: increasing positive regularizers (relative to an average eigenvalue of 1).
+
+    Returns:
+      JSON-able dict: curve [{lambda, g, training_error_bound, classical_training_error}],
+      chosen_lambda, g (at chosen_lambda), training_error_bound (there), error_limit, rule.
+    """
+    Kq, Kc = _square(K_quantum, "K_quantum"), _square(K_classical, "K_classical")
+    if Kq.shape != Kc.shape:
+        raise InvalidInputError(f"the two Grams differ in shape ({Kq.shape} vs {Kc.shape}); "
+                                "compute both on the same training samples")
+    lambdas = [float(v) for v in lambdas]
+    if not lambdas or any(not (v > 0 and math.isfinite(v)) for v in lambdas) \
+            or sorted(set(lambdas)) != lambdas:
+        raise InvalidInputError(f"lambdas must be increasing positive numbers, got {lambdas}")
+    n = Kq.shape[0]
+    Kq = _psd_part(_trace_normalized(Kq, "K_quantum"))
+    c, V = np.linalg.eigh(_trace_normalized(Kc, "K_classical"))
+    c = np.clip(c, 0.0, None)
+    W = V.T @ Kq @ V
+    W = 0.5 * (W + W.T)
+    targets = None
+    if y is not None:
+        codes, classes = encode_labels(_labels(y, n))
+        targets = np.where(codes[:, None] == np.arange(max(classes.size, 2))[None, :], 1.0, -1.0)
+        if classes.size == 2:
+            targets = targets[:, 1:]  # one output suffices for two classes
+        projected_targets = V.T @ targets
+
+    def largest(d):
+        return max(float(np.linalg.eigvalsh(d[:, None] * W * d[None, :])[-1]), 0.0)
+
+    curve = []
+    for lam in lambdas:
+        point = {"lambda": lam,
+                 "g": math.sqrt(largest(np.sqrt(c) / (c + lam))),
+                 "training_error_bound": lam * math.sqrt(largest(1.0 / (c + lam)))}
+        if targets is not None:
+            fitted = V @ ((c / (c + lam))[:, None] * projected_targets)
+            if fitted.shape[1] == 1:
+                predicted = (fitted[:, 0] > 0).astype(int)
+                truth = (targets[:, 0] > 0).astype(int)
+            else:
+                predicted, truth = fitted.argmax(axis=1), targets.argmax(axis=1)
+            point["classical_training_error"] = float(np.mean(predicted != truth))
+        curve.append(point)
+    fitting = [p for p in curve if p["training_error_bound"] <= error_limit]
+    chosen = fitting[-1] if fitting else curve[0]
+    return {"curve": curve, "chosen_lambda": chosen["lambda"], "g": chosen["g"],
+            "training_error_bound": chosen["training_error_bound"],
+            "error_limit": float(error_limit),
+            "rule": (f"largest lambda whose worst-case classical training error "
+                     f"lambda sqrt(||sqrt(Kq) (Kc + lambda I)^-2 sqrt(Kq)||) <= {error_limit} "
+                     "(Huang et al. 2021 pick lambda so that this error stays small; the "
+                     "limit is ours)"
+                     + ("" if fitting else "; no lambda of the grid met it, the smallest "
+                        "is used"))}
+
+
+def classical_gram_health(K_classical, lam: float) -> dict:
+    """Is the trace-normalized classical Gram nearly singular at regularizer ``lam``?
+
+    Flagged when its condition number exceeds ``NEAR_SINGULAR_CONDITION`` or when more than
+    half of its eigenvalues lie below ``lam`` (then g mostly measures the regularizer;
+    issue 15 found 95 of 105 below lambda = 1e-3 on a tuned RBF Gram). Eigenvalues from
+    ``numpy.linalg.eigvalsh``.
+    """
+    K = _trace_normalized(_square(K_classical, "K_classical"), "K_classical")
+    values = np.linalg.eigvalsh(K)
+    largest, smallest = float(values[-1]), float(values[0])
+    condition = largest / smallest if smallest > 0 else math.inf
+    below = int(np.sum(values < lam))
+    near = bool(condition > NEAR_SINGULAR_CONDITION or below > K.shape[0] / 2)
+    warning = ""
+    if near:
+        warning = (f"The classical Gram is nearly singular: {below} of {K.shape[0]} "
+                   f"trace-normalized eigenvalues lie below lambda = {lam:g} (condition number "
+                   f"{condition:.3g}), so the geometric difference depends strongly on "
+                   "lambda; read it together with the curve over lambda.")
+    return {"eigenvalues": int(K.shape[0]), "eigenvalues_below_lambda": below,
+            "lambda": float(lam), "smallest_eigenvalue": smallest,
+            "largest_eigenvalue": largest,
+            "condition_number": condition if math.isfinite(condition) else None,
+            "near_singular": near, "warning": warning}
 
 
 # --------------------------------------------------------------------------- alignment
@@ -438,7 +625,7 @@ def _verdict(mean: float, p, alpha: float, baseline_name: str) -> str:
         words = (f"the quantum kernel is significantly more accurate than the "
                  f"{baseline_name} (mean difference {mean:+.3f}, p = {p:.3g} < {alpha})")
     elif p < alpha and mean < 0:
-        words = (f"the {baseline_name} (classical baseline) is significantly more accurate "
+        words = (f"the {baseline_name} is significantly more accurate "
                  f"than the quantum kernel (mean difference {mean:+.3f}, p = {p:.3g} < "
                  f"{alpha})")
     else:
@@ -571,28 +758,51 @@ def diagnose_kernel(K_train, y_train, n_qubits: int, *, shots: int = 1000,
 
 
 def run_diagnostics(k_untrained, k_chosen, k_classical, y_train, n_qubits: int, *,
-                    shots: int = 1000) -> dict:
+                    shots: int = 1000, kind: str = "fidelity", gamma: float = 1.0,
+                    expectations=None, lambdas=LAMBDA_GRID) -> tuple:
     """The ``diagnostics`` section of a run summary (JSON-able) plus spectra (numpy).
 
     Args:
       k_untrained, k_chosen: train Grams of the untrained and the chosen quantum kernel.
       k_classical: train Gram of the tuned RBF SVM's kernel (same rows).
+      y_train: training labels [N] (for the classical model's training error).
+      n_qubits: qubits of the encoding.
+      shots: shots per kernel entry (fidelity) or per measurement basis (projected), for
+        the concentration rule.
+      kind, gamma: the kernel the SVM uses ("fidelity" or "projected") and the projected
+        bandwidth; they choose the concentration rule's shot-noise model.
+      expectations: optional Pauli expectations [N, n, 3] of the chosen encoding on the
+        training rows (projected only; without them the worst-case bound is used).
+      lambdas: regularizers of the geometric-difference curve.
 
     Returns:
-      (summary dict with concentration, effective_dimension, geometric_difference;
-      dict of descending eigenvalue arrays "initial", "final", "rbf").
+      (summary dict with concentration, effective_dimension (centered Gram HKH),
+      geometric_difference (curve over lambda, chosen lambda, classical-Gram health);
+      dict of descending eigenvalue arrays "initial", "final", "rbf" of the uncentered
+      Grams).
     """
-    geo_reg = 1e-3
-    geo = {"learned_vs_rbf": geometric_difference(k_chosen, k_classical, reg=geo_reg),
-           "untrained_vs_rbf": geometric_difference(k_untrained, k_classical, reg=geo_reg),
-           "regularizer": geo_reg,
+    curves = {name: geometric_difference_curve(K, k_classical, y=y_train, lambdas=lambdas)
+              for name, K in (("learned_vs_rbf", k_chosen), ("untrained_vs_rbf", k_untrained))}
+    chosen_lambda = curves["learned_vs_rbf"]["chosen_lambda"]
+    health = classical_gram_health(k_classical, chosen_lambda)
+    geo = {"learned_vs_rbf": curves["learned_vs_rbf"]["g"],
+           "untrained_vs_rbf": curves["untrained_vs_rbf"]["g"],
+           "regularizer": chosen_lambda,
+           "lambda_rule": curves["learned_vs_rbf"]["rule"],
+           "curves": curves,
+           "classical_gram": health,
            "meaning": "g close to 1: the classical kernel can fit whatever the quantum one "
                       "can on these samples (Huang et al. 2021); large g is necessary, not "
                       "sufficient, for a quantum advantage"}
-    out = {"concentration": concentration(k_chosen, n_qubits, shots=shots),
-           "effective_dimension": {k: float(effective_dimension(v))
-                                   for k, v in (("initial", k_untrained), ("final", k_chosen),
-                                                ("rbf", k_classical))},
+    grams = (("initial", k_untrained), ("final", k_chosen), ("rbf", k_classical))
+    effective = {k: float(effective_dimension(v)) for k, v in grams}
+    effective["uncentered"] = {k: float(effective_dimension(v, centered_gram=False))
+                               for k, v in grams}
+    effective["computed_on"] = ("centered Gram HKH, H = I - 11^T/N (participation ratio of "
+                                "its eigenvalues)")
+    out = {"concentration": concentration(k_chosen, n_qubits, shots=shots, kind=kind,
+                                          gamma=gamma, expectations=expectations),
+           "effective_dimension": effective,
            "geometric_difference": geo}
     spectra = {"initial": spectrum(k_untrained), "final": spectrum(k_chosen),
                "rbf": spectrum(k_classical)}

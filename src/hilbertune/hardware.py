@@ -533,6 +533,16 @@ def _depolarize(rho, qubits, error, n):
     return (1.0 - error) * rho + error * mixed
 
 
+def _encoded_density_matrices(blueprint, angles, noise):
+    """``U(x) |0><0| U(x)^dagger`` with ``noise(rho, step)`` after every step: [N, 2^n, 2^n]."""
+    n = blueprint.n_qubits
+    rho = np.zeros((angles.shape[0], 2**n, 2**n), dtype=np.complex128)
+    rho[:, 0, 0] = 1.0
+    for k, step in enumerate(blueprint.steps):
+        rho = noise(_apply_step(rho, step, angles[:, k], n), step)
+    return rho
+
+
 def density_matrix_kernel(blueprint: Blueprint, params: dict, X_a, X_b=None, *,
                           one_qubit_error: float = 0.0, two_qubit_error: float = 0.0,
                           channel: str = "local", final_depolarizing: float = 0.0,
@@ -599,10 +609,7 @@ def density_matrix_kernel(blueprint: Blueprint, params: dict, X_a, X_b=None, *,
             f"density matrices of {X_a.shape[0]} samples on {n} qubits need "
             f"{need / 2**30:.2f} GiB but the memory budget is {budget / 2**30:.2f} GiB; pass "
             "fewer samples (X_a) or use depolarize_kernel, the per-entry formula")
-    rho_a = np.zeros((X_a.shape[0], 2**n, 2**n), dtype=np.complex128)
-    rho_a[:, 0, 0] = 1.0
-    for k, step in enumerate(blueprint.steps):
-        rho_a = noise(_apply_step(rho_a, step, angles_a[:, k], n), step)
+    rho_a = _encoded_density_matrices(blueprint, angles_a, noise)
 
     if symmetric:
         rows, cols = np.triu_indices(X_a.shape[0])
@@ -938,35 +945,437 @@ def shot_budget(K_train, K_test, y_train, y_test, *, seed, shots_grid=(10, 100, 
     return result
 
 
+# --------------------------------------------------------------------------- projected kernels
+
+#: Measurement bases of a projected kernel: all qubits of one circuit are measured in X, in
+#: Y or in Z (after one basis-change rotation per qubit for X and Y).
+PAULI_BASES = ("X", "Y", "Z")
+
+
+def _as_expectations(E, name: str) -> np.ndarray:
+    try:
+        E = np.asarray(E, dtype=np.float64)
+    except (TypeError, ValueError):
+        raise InvalidInputError(f"{name} must be a real numeric array") from None
+    if E.ndim != 3 or E.shape[2] != 3 or E.shape[0] == 0:
+        raise InvalidInputError(f"{name} must have shape [N, n_qubits, 3] (per-qubit <X>, <Y>, "
+                                f"<Z>), got {E.shape}; see kernels.encoding_expectations")
+    if not np.isfinite(E).all() or np.abs(E).max() > 1 + _PROBABILITY_SLACK:
+        raise InvalidInputError(f"{name} must hold Pauli expectations in [-1, 1]")
+    return np.clip(E, -1.0, 1.0)
+
+
+def _check_gamma(gamma) -> float:
+    if isinstance(gamma, bool) or not isinstance(gamma, (int, float, np.number)) \
+            or not (gamma > 0 and math.isfinite(gamma)):
+        raise InvalidInputError(f"gamma must be a positive number, got {gamma!r}")
+    return float(gamma)
+
+
+def _shrink_vector(shrink) -> np.ndarray:
+    shrink = np.broadcast_to(np.asarray(1.0 if shrink is None else shrink, float), (3,))
+    if np.any(shrink < 0) or np.any(shrink > 1):
+        raise InvalidInputError(f"shrink factors must lie in [0, 1], got {shrink.tolist()}")
+    return shrink
+
+
+def projected_kernel_from_expectations(E_a, E_b=None, *, gamma: float) -> np.ndarray:
+    """``k = exp(-gamma sum_q ||rho_q - rho'_q||_F^2)``, ``||rho - rho'||_F^2 = 1/2 sum_P
+    (<P> - <P>')^2`` (Huang et al., Nat. Commun. 12, 2631 (2021)), in float64 numpy.
+
+    Args:
+      E_a: Pauli expectations [N_a, n, 3]; E_b: [N_b, n, 3] or None (= E_a).
+    """
+    a = _as_expectations(E_a, "E_a").reshape(np.shape(E_a)[0], -1)
+    b = a if E_b is None else _as_expectations(E_b, "E_b").reshape(np.shape(E_b)[0], -1)
+    squared = np.sum((a[:, None, :] - b[None, :, :]) ** 2, axis=-1)
+    return np.exp(-_check_gamma(gamma) * 0.5 * squared)
+
+
+def projected_entry_variance(E_a, E_b=None, *, gamma: float, shots, shrink=None):
+    """Shot-noise variance of each projected-kernel entry (delta method).
+
+    Each expectation ``<P>`` is estimated from ``shots`` outcomes +-1 of its basis circuit:
+    unbiased, variance ``(1 - <P>^2) / shots`` (binomial, common practice). With ``d_j`` the
+    differences of the 3n expectations of the two samples and ``v_j`` the sum of their two
+    variances, ``k = exp(-gamma/2 sum_j d_j^2)`` has, to second order (delta method, common
+    practice; Gaussian errors, whose third moment vanishes),
+
+        Var(k_hat) ~ gamma^2 k^2 (sum_j d_j^2 v_j + 1/2 sum_j v_j^2).
+
+    The first term vanishes when the two samples agree, the second (the spread of the
+    squared noise) does not. Evaluated at the measured, i.e. shrunk, expectations
+    ``shrink_P <P>`` (device noise, see ``projected_shrink``). For a train Gram (``E_b``
+    None) the diagonal is 0: both sides use the same estimate, so ``k(x, x) = 1`` exactly.
+
+    Args:
+      E_a: [N_a, n, 3]; E_b: [N_b, n, 3] or None; shrink: factor per basis (X, Y, Z) or one
+        number (default 1: no device noise).
+
+    Returns:
+      float64 array [N_a, N_b].
+    """
+    shots = _check_shots(shots)
+    shrink = _shrink_vector(shrink)
+    gamma = _check_gamma(gamma)
+    a = _as_expectations(E_a, "E_a") * shrink
+    b = a if E_b is None else _as_expectations(E_b, "E_b") * shrink
+    K = projected_kernel_from_expectations(a, b, gamma=gamma)
+    a, b = a.reshape(a.shape[0], -1), b.reshape(b.shape[0], -1)
+    var_a, var_b = (1.0 - a * a) / shots, (1.0 - b * b) / shots
+    v = var_a[:, None, :] + var_b[None, :, :]
+    d2 = (a[:, None, :] - b[None, :, :]) ** 2
+    out = gamma**2 * K**2 * (np.sum(d2 * v, -1) + 0.5 * np.sum(v * v, -1))
+    if E_b is None:
+        np.fill_diagonal(out, 0.0)
+    return out
+
+
+def projected_variance_bound(K, *, gamma: float, n_qubits: int, shots):
+    """Upper bound of ``projected_entry_variance`` from the Gram alone.
+
+    Every expectation variance is at most ``1 / shots`` (at ``<P> = 0``), so ``v_j <= 2 /
+    shots``; and ``sum_j d_j^2 = -2 ln(k) / gamma``. Hence
+    ``Var(k_hat) <= k^2 (-4 gamma ln(k) / shots + 6 n gamma^2 / shots^2)``.
+
+    Args:
+      K: projected-kernel values in (0, 1], [N_a, N_b].
+    """
+    shots = _check_shots(shots)
+    gamma = _check_gamma(gamma)
+    n = _check_count(n_qubits, "n_qubits")
+    K = np.clip(_as_matrix(K, "K"), 1e-300, 1.0)
+    return K**2 * (-4.0 * gamma * np.log(K) / shots + 6.0 * n * gamma**2 / shots**2)
+
+
+def sample_expectations(E, shots, *, seed, shrink=None) -> np.ndarray:
+    """Finite-shot estimates of Pauli expectations, as a quantum computer returns them.
+
+    ``<P>_hat = 2 m / shots - 1`` with ``m ~ Binomial(shots, (1 + s_P <P>) / 2)`` the count of
+    +1 outcomes (``s_P``: device-noise shrink factor of the basis). Each qubit's marginal
+    is exact; the correlation between qubits measured in the same circuit is not modelled
+    (exact for product encodings).
+
+    Args:
+      E: exact expectations [N, n, 3]; seed: int or numpy Generator.
+
+    Returns:
+      float64 array [N, n, 3].
+    """
+    shots = _check_shots(shots)
+    measured = _as_expectations(E, "E") * _shrink_vector(shrink)
+    rng = _generator(seed)
+    counts = rng.binomial(shots, np.clip(0.5 * (1.0 + measured), 0.0, 1.0))
+    return 2.0 * counts / shots - 1.0
+
+
+def projected_depolarizing(blueprint: Blueprint, *, one_qubit_error: float,
+                           two_qubit_error: float) -> float:
+    """Global depolarizing probability of the encoding circuit alone (projected kernel).
+
+    A projected kernel runs only ``U(x)`` (no inverse), so ``p = 1 - (1 - e1)^g1 (1 -
+    e2)^g2`` with the encoding's own gate counts (``depolarizing_from_gates``).
+    """
+    if blueprint.state_kind != "gates":
+        raise InvalidInputError("amplitude encoding has no gate decomposition, so its gate "
+                                "noise is unknown")
+    counts = resource_counts(blueprint)
+    return depolarizing_from_gates(counts["one_qubit_gates"], counts["two_qubit_gates"],
+                                   one_qubit_error=one_qubit_error,
+                                   two_qubit_error=two_qubit_error)
+
+
+def projected_shrink(p: float, *, n_qubits: int, one_qubit_error: float = 0.0,
+                     readout_error: float = 0.0) -> np.ndarray:
+    """Factor by which device noise shrinks each measured expectation, per basis (X, Y, Z).
+
+    Derivation (global depolarizing model): ``rho -> (1 - p) rho + p I / 2^n``. Its
+    one-qubit marginal is ``(1 - p) rho_q + p I / 2``, and since ``rho_q = (I + r . sigma) /
+    2``, the Bloch vector becomes ``(1 - p) r``: every expectation shrinks by ``1 - p``.
+    Measuring in X or Y takes one basis-change rotation per qubit first; with a global
+    channel of rate e1 after each, they shrink the X and Y expectations by another
+    ``(1 - e1)^n``. A readout flip with probability e maps ``P(+1) -> e + (1 - 2e) P(+1)``,
+    so ``<P> -> (1 - 2 e) <P>`` (exact). Checked against the density-matrix simulation
+    (``density_matrix_expectations``) in the tests.
+
+    Returns:
+      float64 array [3].
+    """
+    p = _check_rate(p, "p")
+    n = _check_count(n_qubits, "n_qubits")
+    e1 = _check_rate(one_qubit_error, "one_qubit_error")
+    e = _check_rate(readout_error, "readout_error")
+    rotation = (1.0 - e1) ** n
+    return (1.0 - p) * (1.0 - 2.0 * e) * np.array([rotation, rotation, 1.0])
+
+
+def density_matrix_expectations(blueprint: Blueprint, params: dict, X, *,
+                                one_qubit_error: float = 0.0, two_qubit_error: float = 0.0,
+                                channel: str = "local") -> np.ndarray:
+    """Per-qubit ``<X>, <Y>, <Z>`` of the noisy encoded state ``rho(x)`` (density matrices).
+
+    The encoding ``U(x)`` is applied step by step to ``|0><0|``, each step followed by a
+    depolarizing channel on the gate's qubits (``"local"``) or on all qubits
+    (``"global"``), as in ``density_matrix_kernel``; then ``<P_q> = Tr(rho P_q)``.
+
+    Returns:
+      float64 array [N, n, 3].
+    """
+    e1 = _check_rate(one_qubit_error, "one_qubit_error")
+    e2 = _check_rate(two_qubit_error, "two_qubit_error")
+    if channel not in CHANNELS:
+        raise InvalidInputError(f"channel must be 'local' or 'global', got {channel!r}")
+    if blueprint.state_kind != "gates":
+        raise InvalidInputError("amplitude encoding has no gate sequence to simulate")
+    n = blueprint.n_qubits
+    if n > DENSITY_MATRIX_MAX_QUBITS:
+        raise ResourceLimitError(f"density-matrix simulation is limited to "
+                                 f"{DENSITY_MATRIX_MAX_QUBITS} qubits, the encoding has {n}")
+    X = validate_features(blueprint, X, name="X")
+    angles = np.asarray(step_angles(compile_blueprint(blueprint), params, X), dtype=np.float64)
+    everything = tuple(range(n))
+
+    def noise(rho, step):
+        error = e1 if len(step.qubits) == 1 else e2
+        return _depolarize(rho, everything if channel == "global" else step.qubits, error, n)
+
+    rho = _encoded_density_matrices(blueprint, angles, noise)
+    out = np.empty((X.shape[0], n, 3))
+    for q in range(n):
+        left, right = 2**q, 2 ** (n - q - 1)
+        view = rho.reshape(-1, left, 2, right, left, 2, right)
+        reduced = np.einsum("biajicj->bac", view)  # partial trace to qubit q: [N, 2, 2]
+        out[:, q, 0] = 2.0 * reduced[:, 0, 1].real
+        out[:, q, 1] = -2.0 * reduced[:, 0, 1].imag
+        out[:, q, 2] = (reduced[:, 0, 0] - reduced[:, 1, 1]).real
+    return out
+
+
+def _smallest_shots(rms_std, target, low: int = 1):
+    """Smallest whole shots >= low with ``rms_std(shots) <= target`` (rms_std decreasing);
+    None beyond 2^50."""
+    if rms_std(low) <= target:
+        return low
+    high = low
+    while rms_std(high) > target:
+        low, high = high, high * 2
+        if high > 2**50:
+            return None
+    while high - low > 1:
+        middle = (low + high) // 2
+        if rms_std(middle) <= target:
+            high = middle
+        else:
+            low = middle
+    return high
+
+
+def projected_shot_budget(E_train, E_test, y_train, y_test, *, gamma: float, seed,
+                          shots_grid=(10, 100, 1000, 10000), C: float = 1.0,
+                          tolerance: float = 0.02, repeats: int = 5, shrink=None,
+                          spread_fraction: float = 0.1) -> dict:
+    """``shot_budget`` for a projected kernel: shots per measurement basis and sample.
+
+    Hardware runs ``3 (N + N_test)`` circuits (each sample in the X, Y and Z basis), each
+    with ``shots`` shots, not one circuit per pair of samples. For each shot count the
+    expectations of every sample are sampled (``sample_expectations``, with device noise
+    through ``shrink``), the train and test Grams are computed from the estimates (a train
+    Gram of estimated features is PSD by construction: no repair), and the SVM is fitted.
+    The analytic rule is ``_analytic_shots``'s, with ``projected_entry_variance``.
+
+    Args:
+      E_train: exact expectations [N, n, 3]; E_test: [N_test, n, 3].
+      gamma: the projected kernel's bandwidth.
+      shrink: device-noise factor per basis (``projected_shrink``); None: noiseless.
+
+    Returns:
+      JSON-able dict with the keys of ``shot_budget`` (``entries`` replaced by
+      ``circuits``; ``circuits_per_sample`` = 3).
+    """
+    rng = _generator(seed)
+    gamma = _check_gamma(gamma)
+    E_train = _as_expectations(E_train, "E_train")
+    E_test = _as_expectations(E_test, "E_test")
+    if E_test.shape[1] != E_train.shape[1]:
+        raise InvalidInputError("E_train and E_test must have the same number of qubits")
+    y_train, y_test = np.asarray(y_train), np.asarray(y_test)
+    if y_train.shape != (E_train.shape[0],) or y_test.shape != (E_test.shape[0],):
+        raise InvalidInputError("labels must be 1-D with one entry per sample")
+    if len(np.unique(y_train)) < 2:
+        raise InvalidInputError("y_train has a single class; an SVM needs at least two")
+    try:
+        grid = [_check_shots(s, name="shots_grid entry") for s in shots_grid]
+    except TypeError:
+        raise InvalidInputError("shots_grid must be a list of positive whole numbers") from None
+    if not grid or sorted(set(grid)) != grid:
+        raise InvalidInputError(f"shots_grid must be non-empty and strictly increasing, got "
+                                f"{list(shots_grid)!r}")
+    if isinstance(repeats, bool) or not isinstance(repeats, int) or repeats < 1:
+        raise InvalidInputError(f"repeats must be a positive integer, got {repeats!r}")
+    shrink = _shrink_vector(shrink)
+    K_train = projected_kernel_from_expectations(E_train, gamma=gamma)
+    K_test = projected_kernel_from_expectations(E_test, E_train, gamma=gamma)
+    exact_accuracy = _svm_accuracy(K_train, K_test, y_train, y_test, C)
+    train_norm = float(np.linalg.norm(K_train))
+    n_train, n_test = E_train.shape[0], E_test.shape[0]
+    bases = len(PAULI_BASES)
+
+    def executions(shots):
+        return int(bases * (n_train + n_test) * shots)
+
+    curve = []
+    for shots in grid:
+        accuracy, alignment, error = [], [], []
+        for _ in range(repeats):
+            noisy_train = sample_expectations(E_train, shots, seed=rng, shrink=shrink)
+            noisy_test = sample_expectations(E_test, shots, seed=rng, shrink=shrink)
+            gram = projected_kernel_from_expectations(noisy_train, gamma=gamma)
+            gram_test = projected_kernel_from_expectations(noisy_test, noisy_train, gamma=gamma)
+            accuracy.append(_svm_accuracy(gram, gram_test, y_train, y_test, C))
+            alignment.append(_alignment(gram, y_train))
+            error.append(float(np.linalg.norm(gram - K_train)) / train_norm)
+        curve.append({"shots": shots, "test_accuracy_mean": float(np.mean(accuracy)),
+                      "test_accuracy_std": float(np.std(accuracy)),
+                      "alignment_mean": float(np.mean(alignment)),
+                      "alignment_std": float(np.std(alignment)),
+                      "relative_gram_error_mean": float(np.mean(error)),
+                      "total_executions": executions(shots)})
+    empirical = None
+    for point in reversed(curve):
+        if point["test_accuracy_mean"] >= exact_accuracy - tolerance:
+            empirical = point["shots"]
+        else:
+            break
+    rows, cols = np.triu_indices(n_train, k=1)
+    spread = float(np.std(K_train[rows, cols])) if rows.size >= 2 else None
+    analytic = None
+    if spread:
+        def rms_std(shots):
+            variance = projected_entry_variance(E_train, gamma=gamma, shots=shots,
+                                                shrink=shrink)
+            return math.sqrt(float(np.mean(variance[rows, cols])))
+
+        analytic = _smallest_shots(rms_std, spread_fraction * spread)
+    return {
+        "estimator": "pauli_expectations",
+        "shots_unit": "shots per circuit (one measurement basis of one sample)",
+        "circuits_per_sample": bases,
+        "shrink": [float(v) for v in shrink],
+        "repeats": repeats, "tolerance": float(tolerance), "C": float(C),
+        "gamma": gamma,
+        "exact": {"test_accuracy": exact_accuracy, "alignment": _alignment(K_train, y_train)},
+        "curve": curve,
+        "empirical_shots": empirical,
+        "analytic_shots": analytic,
+        "analytic_rule": (f"smallest shots per circuit with root-mean-square std of the "
+                          f"off-diagonal train entries (delta method) <= {spread_fraction} x "
+                          "their standard deviation"),
+        "off_diagonal_spread": spread,
+        "circuits": {"train": bases * n_train, "prediction": bases * n_test},
+        "total_executions": {
+            "empirical": None if empirical is None else executions(empirical),
+            "analytic": None if analytic is None else executions(analytic)},
+        "qubits_per_circuit": int(E_train.shape[1]),
+    }
+
+
+def _noise_settings(hw: dict) -> dict:
+    return {"one_qubit_error": hw["one_qubit_error"], "two_qubit_error": hw["two_qubit_error"],
+            "readout_error": hw["readout_error"]}
+
+
+def _curve_executions(curve, shots):
+    for point in curve or ():
+        if point["shots"] == shots:
+            return point["total_executions"]
+    return None
+
+
+def _projected_estimate(hw: dict, blueprint, params, X_train, X_test, y_train, y_test, *,
+                        C, seed, gamma) -> dict:
+    """Projected kernel: Pauli expectations per sample, 3 (N + N_test) circuits."""
+    from hilbertune.kernels import encoding_expectations
+
+    E_train = np.asarray(encoding_expectations(blueprint, params, X_train), dtype=np.float64)
+    E_test = np.asarray(encoding_expectations(blueprint, params, X_test), dtype=np.float64)
+    common = dict(gamma=gamma, seed=seed, shots_grid=sorted(hw["shots_grid"]), C=C,
+                  tolerance=hw["tolerance"])
+    budget = projected_shot_budget(E_train, E_test, y_train, y_test, **common)
+    out = {"estimator": "pauli_expectations", "kind": "projected", "shot_budget": budget}
+    if blueprint.state_kind == "gates":
+        p = projected_depolarizing(blueprint, one_qubit_error=hw["one_qubit_error"],
+                                   two_qubit_error=hw["two_qubit_error"])
+        shrink = projected_shrink(p, n_qubits=blueprint.n_qubits,
+                                  one_qubit_error=hw["one_qubit_error"],
+                                  readout_error=hw["readout_error"])
+        noisy = projected_shot_budget(E_train, E_test, y_train, y_test, shrink=shrink, **common)
+        with_noise = noisy["empirical_shots"]
+        out["device_noise"] = {
+            "model": ("global depolarizing of the encoding circuit shrinks every Bloch vector: "
+                      "<P> -> (1-p) <P> (derived in hardware.projected_shrink); the X and Y "
+                      "basis rotations add (1-e1)^n"
+                      + ("; readout flips shrink it by (1-2e)" if hw["readout_error"] > 0
+                         else "")),
+            "p_from": "gate counts of the encoding circuit alone (a projected kernel runs no "
+                      "inverse)",
+            **_noise_settings(hw),
+            "depolarizing_probability": p,
+            "shrink_per_basis": {b: float(v) for b, v in zip(PAULI_BASES, shrink)},
+            "test_accuracy_at_most_shots": noisy["curve"][-1]["test_accuracy_mean"],
+            "empirical_shots_with_noise": with_noise,
+            "total_executions_with_noise": _curve_executions(noisy["curve"], with_noise),
+            "curve": noisy["curve"],
+        }
+    return out
+
+
 def run_estimate(hw: dict, blueprint, params, X_train, X_test, k_train, k_test, y_train,
                  y_test, *, C: float, seed: int, kind: str = "fidelity",
                  gamma: float = 1.0) -> dict:
     """Shot budget (noiseless and under device noise) of a run's kernel (JSON-able dict).
 
+    A fidelity kernel is estimated entry by entry with ``hw["estimator"]`` (one circuit per
+    pair of samples); a projected kernel from single-qubit Pauli expectations (3 circuits
+    per sample, ``projected_shot_budget``), whatever ``hw["estimator"]`` says.
+
     Args:
       hw: the ``[hardware]`` section of a resolved configuration.
-      kind, gamma: the kernel the SVM uses ("fidelity" or "projected").
+      k_train, k_test: the exact Grams of the SVM (fidelity; the projected path recomputes
+        them from the Pauli expectations).
+      kind, gamma: the kernel the SVM uses ("fidelity" or "projected") and the projected
+        bandwidth.
+
+    Returns:
+      {"estimator", "kind", "shot_budget", "device_noise" (gate encodings only)}; the
+      device-noise part holds ``empirical_shots_with_noise`` and
+      ``total_executions_with_noise``.
     """
+    if kind not in ("fidelity", "projected"):
+        raise InvalidInputError(f"kind must be 'fidelity' or 'projected', got {kind!r}")
+    if kind == "projected":
+        return _projected_estimate(hw, blueprint, params, X_train, X_test, y_train, y_test,
+                                   C=C, seed=seed, gamma=gamma)
     estimator = hw["estimator"]
     overlaps = {}
     if estimator == "hadamard_test":  # estimates Re and Im of the overlap, needs the phase
         overlaps = {"overlaps_train": state_overlaps(blueprint, params, X_train),
-                    "overlaps_test": state_overlaps(blueprint, params, X_test,
-                                                             X_train)}
+                    "overlaps_test": state_overlaps(blueprint, params, X_test, X_train)}
     common = dict(seed=seed, shots_grid=sorted(hw["shots_grid"]), C=C,
                   tolerance=hw["tolerance"], estimator=estimator, n_qubits=blueprint.n_qubits,
                   **overlaps)
     budget = shot_budget(k_train, k_test, y_train, y_test, **common)
-    out = {"estimator": estimator, "shot_budget": budget}
+    budget["shots_unit"] = "shots per circuit (one kernel entry)"
+    out = {"estimator": estimator, "kind": "fidelity", "shot_budget": budget}
     if blueprint.state_kind == "gates":
         p = inversion_test_depolarizing(
             blueprint, one_qubit_error=hw["one_qubit_error"],
             two_qubit_error=hw["two_qubit_error"])
         noisy = shot_budget(k_train, k_test, y_train, y_test, depolarizing=p,
-                                     readout_error=hw["readout_error"], **common)
+                            readout_error=hw["readout_error"], **common)
         readout = ("; then readout flips: k -> f k + (1-k)(1-f)/(2^n-1), f = (1-e)^n "
                    "(non-zero outcomes assumed even)" if estimator == "inversion_test"
                    else "; then readout flips shrink it by (1-2e)")
+        with_noise = noisy.get("empirical_shots")
         out["device_noise"] = {
             "model": {"inversion_test": "global depolarizing per kernel entry, k -> "
                                         "(1-p) k + p/2^n (Hubregtsen et al. 2022)",
@@ -978,12 +1387,12 @@ def run_estimate(hw: dict, blueprint, params, X_train, X_test, k_train, k_test, 
             "p_from": "gate counts of the inversion-test circuit (encoding and its "
                       "inverse); for the ancilla estimators an approximation, since their "
                       "controlled circuits have more gates",
-            "one_qubit_error": hw["one_qubit_error"], "two_qubit_error": hw["two_qubit_error"],
-            "readout_error": hw["readout_error"],
+            **_noise_settings(hw),
             "depolarizing_probability": p,
             "test_accuracy_at_most_shots": noisy["curve"][-1]["test_accuracy_mean"]
             if noisy.get("curve") else None,
-            "empirical_shots_with_noise": noisy.get("empirical_shots"),
+            "empirical_shots_with_noise": with_noise,
+            "total_executions_with_noise": _curve_executions(noisy.get("curve"), with_noise),
             "curve": noisy.get("curve"),
         }
     return out
