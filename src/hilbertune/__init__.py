@@ -19,18 +19,21 @@ from hilbertune.circuits import (AngleRule, Blueprint, Step, encode_states, init
 from hilbertune.config import resolve_config
 from hilbertune.data import (Dataset, Preprocessing, Split, invented_demo, load_bundled,
                              load_csv, split_and_scale)
-from hilbertune.diagnostics import (alignment_of, compare_accuracies, concentration,
-                                    corrected_resampled_t_test, effective_dimension,
-                                    geometric_difference, linear_svm, mcnemar_exact,
+from hilbertune.diagnostics import (alignment_of, classical_gram_health, compare_accuracies,
+                                    concentration, corrected_resampled_t_test,
+                                    effective_dimension, geometric_difference,
+                                    geometric_difference_curve, linear_svm, mcnemar_exact,
                                     repeated_split_scores, spectrum, tuned_rbf_svm)
 from hilbertune.encodings import (FAMILIES, amplitude_state, bit_flips, build_encoding,
                                   iqp_style, reuploading_layers, single_axis_rotations)
 from hilbertune.errors import (ArtifactError, HilbertuneError, InvalidInputError,
                                NotFittedError, ResourceLimitError, TrainingError)
-from hilbertune.hardware import (clip_eigenvalues, density_matrix_kernel, depolarize_kernel,
-                                 inversion_test_depolarizing, readout_kernel,
-                                 repair_gram, restore_unit_diagonal, shift_spectrum,
-                                 shot_budget, shot_sampled_gram, shot_variance)
+from hilbertune.hardware import (clip_eigenvalues, density_matrix_expectations,
+                                 density_matrix_kernel, depolarize_kernel,
+                                 inversion_test_depolarizing, projected_entry_variance,
+                                 projected_shot_budget, projected_shrink, readout_kernel,
+                                 repair_gram, restore_unit_diagonal, sample_expectations,
+                                 shift_spectrum, shot_budget, shot_sampled_gram, shot_variance)
 from hilbertune.kernels import (FrozenKernel, fidelity_gram, interference_zero_probability,
                                 pauli_expectations, product_gram, projected_gram, quantum_gram)
 from hilbertune.estimator import EncodingClassifier
@@ -42,7 +45,10 @@ from hilbertune.training import (SvmChoice, TrainingResult, TrainingSettings, tr
 from hilbertune.landmarks import (NystroemMap, NystroemSVM, fit_nystroem, nystroem_features,
                                   nystroem_gram, select_landmarks)
 from hilbertune.qasm import encoding_to_qasm3, kernel_circuit_to_qasm3
+from hilbertune.pipeline import holm_adjust
 from hilbertune.runs import execute_fit, predict_csv, reproduce_run
+from hilbertune.selection import (Candidate, CandidateScore, Selection, SelectionSettings,
+                                  learn_and_select, one_standard_error_choice)
 from hilbertune.sweeps import plan_sweep, read_results, run_sweep, run_sweep_file
 
 __version__ = "0.1.0"
@@ -62,17 +68,23 @@ __all__ = [
     # diagnostics and baselines
     "alignment_of", "compare_accuracies", "concentration", "corrected_resampled_t_test",
     "effective_dimension", "geometric_difference", "linear_svm", "mcnemar_exact",
-    "repeated_split_scores", "spectrum", "tuned_rbf_svm",
+    "repeated_split_scores", "spectrum", "tuned_rbf_svm", "classical_gram_health",
+    "geometric_difference_curve", "holm_adjust",
     # hardware and export
     "clip_eigenvalues", "density_matrix_kernel", "depolarize_kernel",
     "inversion_test_depolarizing", "readout_kernel", "repair_gram", "restore_unit_diagonal",
     "shift_spectrum",
-    "shot_budget", "shot_sampled_gram", "shot_variance",
+    "shot_budget", "shot_sampled_gram", "shot_variance", "density_matrix_expectations",
+    "projected_entry_variance", "projected_shot_budget", "projected_shrink",
+    "sample_expectations",
     "encoding_to_qasm3", "kernel_circuit_to_qasm3",
     # learning
     "EncodingClassifier", "OBJECTIVES", "centered_alignment", "kernel_alignment",
     "objective_loss", "ridge_kfold_loss", "ridge_loo_loss", "target_matrix",
     "SvmChoice", "TrainingResult", "TrainingSettings", "train_encoding", "tune_svm_c",
+    # choosing the kernel
+    "Candidate", "CandidateScore", "Selection", "SelectionSettings", "learn_and_select",
+    "one_standard_error_choice",
     # scale
     "NystroemMap", "NystroemSVM", "fit_nystroem", "nystroem_features", "nystroem_gram",
     "select_landmarks",

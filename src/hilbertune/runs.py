@@ -310,9 +310,16 @@ def _summarize(config, dataset, n_features, blueprint, split, settings, main, si
     y_train, y_test = split.y_train, split.y_test
     selection = main.selection
     rbf, linear = main.baselines["rbf_svm"], main.baselines["linear_svm"]
+    expectations = None
+    if settings.kernel == "projected":
+        from hilbertune.kernels import encoding_expectations
+
+        expectations = np.asarray(encoding_expectations(blueprint, main.params, split.X_train))
     diag, spectra = diagnostics.run_diagnostics(main.k0_train, main.k_train, rbf.gram_train,
                                                 y_train, blueprint.n_qubits,
-                                                shots=config["evaluation"]["shots"])
+                                                shots=config["evaluation"]["shots"],
+                                                kind=settings.kernel, gamma=settings.gamma,
+                                                expectations=expectations)
     align0 = (diagnostics.alignment_of(main.k0_train, y_train),
               diagnostics.alignment_of(main.k0_train, y_train, centered=True))
     align1 = (diagnostics.alignment_of(main.k_train, y_train),
@@ -331,6 +338,9 @@ def _summarize(config, dataset, n_features, blueprint, split, settings, main, si
     cautions = [SIMULATION_CAUTION]
     if diag["concentration"].get("warning"):
         cautions.append(diag["concentration"]["warning"])
+    gram_warning = diag["geometric_difference"].get("classical_gram", {}).get("warning")
+    if gram_warning:
+        cautions.append(gram_warning)
     if dataset.invented:
         cautions.append("The dataset is invented by hilbertune's demo generator; results say "
                         "nothing about any real system.")
@@ -420,6 +430,7 @@ def _reported_run(selection):
 
 def _write_artifacts(out_dir, config, dataset, blueprint, split, main, summary, arrays, timings,
                      started):
+    from hilbertune import report
     from hilbertune.qasm import encoding_to_qasm3
     from hilbertune.report import build_report
 
@@ -454,6 +465,7 @@ def _write_artifacts(out_dir, config, dataset, blueprint, split, main, summary, 
     # experiments/bench_fit.py gives medians)
     summary["timings"] = {k: float(v) for k, v in timings.items()}
     summary["wall_time_s"] = time.perf_counter() - started
+    summary["headline"] = report.headline(summary)
     artifacts.write_json(out_dir / "summary.json", summary)
     build_report(out_dir)
     artifacts.write_manifest(out_dir, seed=config["seed"], data_sha256=dataset.sha256,
@@ -479,25 +491,18 @@ def hardware_estimate(config, blueprint, params, X_train, X_test, k_train, k_tes
 
 
 def summary_lines(summary: dict) -> list:
-    """A few plain lines for the terminal: what was chosen, whether learning helped, and
-    how the quantum kernel compares with the classical ones."""
-    base = summary.get("baselines", {})
-    sig = summary.get("significance", {})
+    """Plain lines for the terminal: the report's headline first, then which kernel was
+    chosen and why, and the dataset."""
+    from hilbertune import report
+
+    head = summary.get("headline") or report.headline(summary)
+    lines = list(report.headline_lines(head))
     sel = summary.get("selection") or {}
-    lines = [f"dataset: {summary['dataset']['source']}"]
     if sel:
         lines.append(f"chosen kernel: {sel['chosen']} (inner-CV accuracy "
                      f"{sel['cv_accuracy']:.3f} +- {sel['cv_accuracy_sd']:.3f} over "
-                     f"{sel['folds']} folds of the training part)")
-    lines += [
-        f"test accuracy: chosen quantum {summary['test_accuracy']:.3f} | untrained quantum "
-        f"{summary['untrained_test_accuracy']:.3f} | tuned RBF "
-        f"{base.get('rbf_svm', {}).get('test_accuracy', float('nan')):.3f} | linear "
-        f"{base.get('linear_svm', {}).get('test_accuracy', float('nan')):.3f}",
-    ]
-    if sig.get("learning_verdict"):
-        lines.append(f"did learning help? {sig['learning_verdict']}")
-    lines.append(f"verdict: {sig.get('verdict', 'n/a')}")
+                     f"{sel['folds']} folds of the training part); {sel['reason']}")
+    lines.append(f"dataset: {summary['dataset']['source']}")
     return lines
 
 
