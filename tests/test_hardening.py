@@ -96,11 +96,17 @@ def run_copy(finished_run, tmp_path):
     return copy
 
 
+def sealed(manifest: dict) -> str:
+    """Manifest JSON with a matching digest of its own: what a careful forger writes."""
+    manifest = {k: v for k, v in manifest.items() if k != artifacts.MANIFEST_DIGEST}
+    return json.dumps({**manifest, artifacts.MANIFEST_DIGEST: artifacts.manifest_digest(manifest)})
+
+
 def rehash(run_dir: Path, name: str) -> None:
     """Update the manifest entry of ``name`` so only the content check can catch it."""
     manifest = json.loads((run_dir / "manifest.json").read_text())
     manifest["artifacts"][name] = artifacts.sha256_file(run_dir / name)
-    (run_dir / "manifest.json").write_text(json.dumps(manifest))
+    (run_dir / "manifest.json").write_text(sealed(manifest))
 
 
 # --------------------------------------------------------------------------- predict
@@ -195,7 +201,7 @@ def test_a_newer_format_is_refused_on_every_reading_command(run_copy, moons_csv,
                                                             command):
     manifest = json.loads((run_copy / "manifest.json").read_text())
     manifest["format_version"] = artifacts.FORMAT_VERSION + 1
-    (run_copy / "manifest.json").write_text(json.dumps(manifest))
+    (run_copy / "manifest.json").write_text(sealed(manifest))
     extra = [moons_csv] if command == "predict" else []
     code, _, err = run([command, run_copy, *extra], capsys)
     assert_refused(code, err, "newer hilbertune")
@@ -230,9 +236,10 @@ def test_pickled_arrays_are_never_unpickled_even_with_a_matching_hash(run_copy, 
 @pytest.mark.parametrize("damage, fragment", [
     ("not json {", "manifest.json could not be read"),
     ("[1, 2]", "not a hilbertune manifest"),
-    ('{"format_version": 1, "artifacts": {"../secret": "00"}}', "not a file of the run"),
+    (sealed({"format_version": 1, "artifacts": {"../secret": "00"}}), "not a file of the run"),
     ('{"format_version": "1", "artifacts": {}}', "no valid format_version"),
-    ('{"format_version": 1, "artifacts": {}}', "does not cover config.toml"),
+    (sealed({"format_version": 1, "artifacts": {}}), "does not cover config.toml"),
+    ('{"format_version": 1, "artifacts": {}}', "has no manifest_sha256"),
 ])
 def test_a_damaged_manifest_is_refused_in_one_line(run_copy, capsys, damage, fragment):
     (run_copy / "manifest.json").write_text(damage)

@@ -30,7 +30,7 @@ def _one_of(*names):
 
 SCHEMA = {
     # scikit-learn and numpy's legacy generators take seeds below 2**32
-    "seed": (0, int, (f"in [0, {2**32 - 1}]", lambda v: 0 <= v <= 2**32 - 1),
+    "seed": (0, int, (f"non-negative and at most {2**32 - 1}", lambda v: 0 <= v <= 2**32 - 1),
              "one integer that drives every random choice"),
     "data": {
         "source": ("demo", str, None, "'demo', 'csv', or the name of a scikit-learn dataset "
