@@ -237,7 +237,7 @@ def _cmd_report(args, console):
     from hilbertune.runs import load_run
 
     load_run(args.run_dir)  # every check that predict and export make, pickle included
-    with rundir.exclusive(args.run_dir, option="moment"):
+    with rundir.exclusive(args.run_dir, option=None):
         load_run(args.run_dir)  # and again under the lock: nobody replaced it meanwhile
         path = build_report(args.run_dir)
     console.say(f"Report rebuilt: {path}")

@@ -37,7 +37,7 @@ def build_path(target) -> Path:
 
 
 @contextmanager
-def exclusive(target, *, what: str = "run directory", option: str = "--out"):
+def exclusive(target, *, what: str = "run directory", option: str | None = "--out"):
     """Hold the exclusive lock of ``target`` (a directory, existing or not) in this block.
 
     Raises:
@@ -59,7 +59,8 @@ def exclusive(target, *, what: str = "run directory", option: str = "--out"):
             holder = _holder(path)
             raise InvalidInputError(
                 f"{what} {shown!r} is being written by another hilbertune process"
-                f"{holder}; wait for it to finish or choose another {option}") from None
+                f"{holder}; wait for it to finish"
+                f"{f' or choose another {option}' if option else ' and try again'}") from None
         try:  # the previous holder may have removed the file between our open and lock
             same = os.stat(path).st_ino == os.fstat(handle.fileno()).st_ino
         except FileNotFoundError:
