@@ -823,10 +823,14 @@ def test_item3_outputs_never_land_on_run_artifacts_or_inputs(run_copy, moons_csv
               "artifact of the run"),
              (["predict", run_copy, moons_csv, "--out", run_copy / "config.toml", "--overwrite"],
               "artifact of the run")]
+    pipe = tmp_path / "pipe"
+    os.mkfifo(pipe)  # an atomic write would have replaced it (as it did /dev/full)
+    cases.append((["export", run_copy, "--out", pipe], "not a regular file"))
     for argv, fragment in cases:
         code, _, err = run(argv, capsys)
         assert_refused(code, err, fragment)
     assert snapshot(run_copy) == before
+    assert pipe.is_fifo()
     artifacts.verify_run(run_copy)
     rows = tmp_path / "rows.csv"
     shutil.copy(moons_csv, rows)

@@ -98,6 +98,10 @@ def check_output_path(out, *, run_dir, inputs=(), overwrite: bool = False) -> No
         raise InvalidInputError(f"--out {str(out)!r} is a folder; pass a file name such as "
                                 f"{str(out / 'out.txt')!r}")
     real = out.resolve()
+    if real.exists() and not real.is_file():
+        # an atomic write renames over the path: it would replace a device or a pipe
+        raise InvalidInputError(f"--out {str(out)!r} is not a regular file (a device, pipe or "
+                                "socket); pass a file name, or leave out --out to print")
     folder = real.parent
     if (folder / artifacts.MANIFEST).is_file() or (folder / "checkpoints").is_dir():
         names = set(ARTIFACTS) | {artifacts.MANIFEST}
