@@ -1260,3 +1260,12 @@ def test_item15_report_refuses_pickled_params_even_with_a_matching_hash(run_copy
     code, _, err = run(["report", run_copy], capsys)
     assert_refused(code, err, "params.npz could not be read")
     assert not marker.exists() and snapshot(run_copy) == before
+
+
+def test_item11_a_sweep_with_a_conflicting_qubit_count_is_refused_up_front(tmp_path, capsys):
+    description = tmp_path / "s.toml"
+    description.write_text('[base]\ndata.source = "moons"\nencoding.family = "iqp"\n'
+                           '[grid]\n"encoding.qubits" = [2, 5]\n')
+    code, _, err = run(["sweep", description, "--out", tmp_path / "o"], capsys)
+    assert_refused(code, err, "encoding.qubits=5")
+    assert "allows at most 2 qubit(s)" in err and not (tmp_path / "o").exists()

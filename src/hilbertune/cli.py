@@ -306,10 +306,13 @@ def _check_sweep_inputs(description, workers: int, scheduler, max_trials=None) -
     every trial; parallel trials on this machine must fit in its memory together."""
     from hilbertune.circuits import is_product, state_memory_bytes
     from hilbertune.errors import ResourceLimitError
-    from hilbertune.runs import check_inputs
+    from hilbertune.runs import check_inputs, check_qubit_request
     from hilbertune.sweeps import plan_sweep
 
     plan = plan_sweep(description, max_trials=max_trials)
+    base = description.get("base", {})
+    qubits_given = "encoding.qubits" in plan.swept_keys or (
+        "encoding.qubits" in base or "qubits" in (base.get("encoding") or {}))
     seen, largest = set(), 0
     for trial in plan.trials:
         c = trial.config
@@ -319,6 +322,8 @@ def _check_sweep_inputs(description, workers: int, scheduler, max_trials=None) -
         seen.add(key)
         try:
             _, _, blueprint, split = check_inputs(c)
+            if qubits_given:
+                check_qubit_request(c)
         except InvalidInputError as exc:
             swept = ", ".join(f"{k}={v!r}" for k, v in trial.assignments)
             raise type(exc)(f"sweep trial {trial.trial_id} ({swept}): {exc}") from None
