@@ -242,6 +242,7 @@ def test_reproduce_maps_old_names_of_an_older_run(fitted_run, tmp_path, capsys):
     (old / "config.toml").write_text(text.replace("\nlayers = 2\n", "\nlayers = 2\nreps = 2\n"))
     manifest = json.loads((old / "manifest.json").read_text())
     manifest["artifacts"]["config.toml"] = artifacts.sha256_file(old / "config.toml")
+    manifest[artifacts.MANIFEST_DIGEST] = artifacts.manifest_digest(manifest)
     (old / "manifest.json").write_text(json.dumps(manifest))
     code, out, err = run(["reproduce", old, "--json"], capsys)
     assert code == 0, err

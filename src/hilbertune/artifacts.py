@@ -2,8 +2,9 @@
 
 Every file is written to a temporary name in the same folder and renamed into place, so a
 crash never leaves a half-written artifact. Arrays go to ``.npz`` without pickle; metadata
-to JSON/TOML/CSV. ``manifest.json`` holds the SHA-256 of every artifact and is checked on
-load, so a modified file is refused by name.
+to JSON/TOML/CSV. ``manifest.json`` holds the SHA-256 of every artifact and a digest of its
+own content; both are checked on load, so a modified file (the manifest included) is refused
+by name.
 """
 
 from __future__ import annotations
@@ -26,6 +27,7 @@ from hilbertune.errors import ArtifactError
 
 FORMAT_VERSION = 1
 MANIFEST = "manifest.json"
+MANIFEST_DIGEST = "manifest_sha256"  # over the canonical JSON of every other manifest field
 
 
 def write_bytes(path, payload: bytes) -> None:
@@ -139,8 +141,30 @@ def write_manifest(run_dir, *, seed: int, data_sha256: str, artifacts: list) -> 
         "data_sha256": data_sha256,
         "artifacts": {name: sha256_file(run_dir / name) for name in sorted(artifacts)},
     }
+    return _seal_manifest(run_dir, manifest)
+
+
+def manifest_digest(manifest: dict) -> str:
+    """SHA-256 of the canonical JSON of every manifest field but the digest itself."""
+    body = {k: v for k, v in manifest.items() if k != MANIFEST_DIGEST}
+    text = json.dumps(body, sort_keys=True, separators=(",", ":"), ensure_ascii=True,
+                      default=_json_default)
+    return hashlib.sha256(text.encode("utf-8")).hexdigest()
+
+
+def _seal_manifest(run_dir: Path, manifest: dict) -> dict:
+    manifest = {k: v for k, v in manifest.items() if k != MANIFEST_DIGEST}
+    manifest[MANIFEST_DIGEST] = manifest_digest(manifest)
     write_json(run_dir / MANIFEST, manifest)
     return manifest
+
+
+def update_manifest(run_dir, **fields) -> dict:
+    """Add ``fields`` to a finished run's manifest (after checking it) and seal it again."""
+    run_dir = Path(run_dir)
+    manifest = verify_run(run_dir)
+    manifest.update(fields)
+    return _seal_manifest(run_dir, manifest)
 
 
 def verify_run(run_dir) -> dict:
@@ -174,6 +198,15 @@ def verify_run(run_dir) -> dict:
         raise ArtifactError(f"{str(run_dir)!r} was written by a newer hilbertune (format "
                             f"{version!r}, this version reads {FORMAT_VERSION}); upgrade "
                             "hilbertune to read it")
+    digest = manifest.get(MANIFEST_DIGEST)
+    if not isinstance(digest, str):
+        raise ArtifactError(f"{MANIFEST} in {str(run_dir)!r} has no {MANIFEST_DIGEST} (its own "
+                            "digest), so its seed and data hash cannot be trusted; restore it "
+                            "or rerun the fit")
+    if digest != manifest_digest(manifest):
+        raise ArtifactError(f"{MANIFEST} in {str(run_dir)!r} was edited after the run (its "
+                            f"content no longer matches its {MANIFEST_DIGEST}); restore the "
+                            "original or rerun the fit")
     for name, digest in listed.items():
         if Path(name).name != name or name in ("", ".", ".."):
             raise ArtifactError(f"{MANIFEST} in {str(run_dir)!r} lists {name!r}, which is not "

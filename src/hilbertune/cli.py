@@ -76,6 +76,8 @@ def build_parser() -> argparse.ArgumentParser:
     predict.add_argument("run_dir", type=Path)
     predict.add_argument("csv", type=Path, help="CSV with the same feature columns")
     predict.add_argument("--out", type=Path, help="write predictions here (default: stdout)")
+    predict.add_argument("--overwrite", action="store_true",
+                         help="allow --out to be the input CSV (never a run artifact)")
     _add_common(predict)
 
     report = sub.add_parser("report", help="rebuild report.html of a run from its artifacts")
@@ -88,12 +90,17 @@ def build_parser() -> argparse.ArgumentParser:
     export.add_argument("--kernel-circuit", action="store_true",
                         help="export the circuit that estimates one kernel entry instead")
     export.add_argument("--out", type=Path, help="file to write (default: print)")
+    export.add_argument("--overwrite", action="store_true", help=argparse.SUPPRESS)
     _add_common(export)
 
     reproduce = sub.add_parser("reproduce", help="rerun a run from its config and seed and "
                                "compare parameters and metrics")
     reproduce.add_argument("run_dir", type=Path)
     reproduce.add_argument("--keep", type=Path, help="keep the rerun in this directory")
+    reproduce.add_argument("--overwrite", action="store_true",
+                           help="replace the run in an existing --keep directory")
+    reproduce.add_argument("--data", type=Path, help="the run's CSV file, when its saved path "
+                           "does not reach it from here (checked against the recorded SHA-256)")
     _add_common(reproduce)
 
     sweep = sub.add_parser("sweep", help="run many configurations from a sweep TOML")
@@ -102,6 +109,8 @@ def build_parser() -> argparse.ArgumentParser:
     sweep.add_argument("--workers", type=int, default=1, help="parallel trials (default 1)")
     sweep.add_argument("--scheduler", help="Dask scheduler address tcp://HOST:PORT, or "
                        "'local' for a cluster on this machine")
+    sweep.add_argument("--max-trials", type=int, default=None, metavar="N",
+                       help="refuse sweeps of more than N trials (default 1000)")
     _add_common(sweep)
     return parser
 
@@ -152,7 +161,14 @@ def _fit_config(args):
     if args.seed is not None:
         overrides.append(("seed", args.seed))
     overrides += [cfg.parse_assignment(item) for item in args.set]
-    return cfg.resolve_config(user, overrides)
+    config = cfg.resolve_config(user, overrides)
+    encoding = user.get("encoding")
+    if args.qubits is not None or any(key == "encoding.qubits" for key, _ in overrides) or (
+            isinstance(encoding, dict) and "qubits" in encoding):
+        from hilbertune.runs import check_qubit_request
+
+        check_qubit_request(config)
+    return config
 
 
 def _print_summary(console, summary, run_dir):
@@ -192,16 +208,17 @@ def _cmd_fit(args, console):
     return {"run_dir": str(out), "summary": summary}
 
 
-def _check_out_file(path) -> None:
-    if path is not None and Path(path).is_dir():
-        raise InvalidInputError(f"--out {str(path)!r} is a folder; pass a file name such as "
-                                f"{str(Path(path) / 'out.txt')!r}")
+def _check_out_file(path, run_dir, inputs=(), overwrite=False) -> None:
+    if path is not None:
+        from hilbertune.runs import check_output_path
+
+        check_output_path(path, run_dir=run_dir, inputs=inputs, overwrite=overwrite)
 
 
 def _cmd_predict(args, console):
     from hilbertune.runs import predict_csv
 
-    _check_out_file(args.out)
+    _check_out_file(args.out, args.run_dir, [args.csv], args.overwrite)
     rows = predict_csv(args.run_dir, args.csv)
     text = "row,prediction\n" + "".join(f"{i},{label}\n" for i, label in enumerate(rows))
     if args.out:
@@ -215,11 +232,14 @@ def _cmd_predict(args, console):
 
 
 def _cmd_report(args, console):
-    from hilbertune.artifacts import verify_run
+    from hilbertune import rundir
     from hilbertune.report import build_report
+    from hilbertune.runs import load_run
 
-    verify_run(args.run_dir)
-    path = build_report(args.run_dir)
+    load_run(args.run_dir)  # every check that predict and export make, pickle included
+    with rundir.exclusive(args.run_dir, option=None):
+        load_run(args.run_dir)  # and again under the lock: nobody replaced it meanwhile
+        path = build_report(args.run_dir)
     console.say(f"Report rebuilt: {path}")
     return {"report": str(path)}
 
@@ -227,7 +247,7 @@ def _cmd_report(args, console):
 def _cmd_export(args, console):
     from hilbertune.runs import export_circuit
 
-    _check_out_file(args.out)
+    _check_out_file(args.out, args.run_dir)
     text, resources = export_circuit(args.run_dir, kernel_circuit=args.kernel_circuit)
     if args.out:
         from hilbertune.artifacts import write_text
@@ -244,6 +264,7 @@ def _cmd_reproduce(args, console):
     from hilbertune.runs import reproduce_run
 
     same, differences, notes = reproduce_run(args.run_dir, keep=args.keep,
+                                             overwrite=args.overwrite, data=args.data,
                                              progress=not console.quiet)
     for note in notes:
         console.say(f"note: {note}")
@@ -262,11 +283,14 @@ def _cmd_sweep(args, console):
 
     if args.workers < 1:
         raise InvalidInputError(f"--workers must be at least 1, got {args.workers}")
+    if args.max_trials is not None and args.max_trials < 1:
+        raise InvalidInputError(f"--max-trials must be at least 1, got {args.max_trials}")
     description = cfg.load_toml(args.description)
-    _check_sweep_inputs(description, args.workers, args.scheduler)
+    max_trials = args.max_trials
+    _check_sweep_inputs(description, args.workers, args.scheduler, max_trials)
     out = args.out or _default_out("sweep")
     rows = run_sweep(description, out, workers=args.workers, scheduler=args.scheduler,
-                     progress=not console.quiet)
+                     progress=not console.quiet, max_trials=max_trials)
     failed = sum(1 for r in rows if r.get("status") != "ok")
     console.say(f"{len(rows)} trials, {failed} failed; table: {Path(out) / 'results.csv'}")
     if failed:
@@ -276,16 +300,19 @@ def _cmd_sweep(args, console):
     return result, (EXIT_FAILURE if failed else EXIT_OK)
 
 
-def _check_sweep_inputs(description, workers: int, scheduler) -> None:
+def _check_sweep_inputs(description, workers: int, scheduler, max_trials=None) -> None:
     """Load the data and build the encoding of every distinct trial before any trial runs,
     so bad data or too many qubits stop the sweep up front (exit 2) instead of failing
     every trial; parallel trials on this machine must fit in its memory together."""
     from hilbertune.circuits import is_product, state_memory_bytes
     from hilbertune.errors import ResourceLimitError
-    from hilbertune.runs import check_inputs
+    from hilbertune.runs import check_inputs, check_qubit_request
     from hilbertune.sweeps import plan_sweep
 
-    plan = plan_sweep(description)
+    plan = plan_sweep(description, max_trials=max_trials)
+    base = description.get("base", {})
+    qubits_given = "encoding.qubits" in plan.swept_keys or (
+        "encoding.qubits" in base or "qubits" in (base.get("encoding") or {}))
     seen, largest = set(), 0
     for trial in plan.trials:
         c = trial.config
@@ -295,6 +322,8 @@ def _check_sweep_inputs(description, workers: int, scheduler) -> None:
         seen.add(key)
         try:
             _, _, blueprint, split = check_inputs(c)
+            if qubits_given:
+                check_qubit_request(c)
         except InvalidInputError as exc:
             swept = ", ".join(f"{k}={v!r}" for k, v in trial.assignments)
             raise type(exc)(f"sweep trial {trial.trial_id} ({swept}): {exc}") from None
@@ -329,9 +358,13 @@ COMMANDS = {"demo": _cmd_demo, "fit": _cmd_fit, "predict": _cmd_predict,
 
 
 def main(argv=None) -> int:
+    argv = sys.argv[1:] if argv is None else list(argv)
+    # with --json a failure is one JSON object on stdout too (the line on stderr stays)
+    as_json = "--json" in argv
     parser = build_parser()
     try:
         args = parser.parse_args(argv)
+        as_json = bool(getattr(args, "json", False))
         if not args.command:
             parser.print_help()
             return EXIT_USAGE
@@ -344,23 +377,25 @@ def main(argv=None) -> int:
             print(json.dumps(result, default=str, sort_keys=True))
         return code
     except InvalidInputError as exc:
-        print(f"hilbertune: error: {_one_line(exc)}", file=sys.stderr)
-        return EXIT_USAGE
+        return _fail(as_json, "error", _one_line(exc), EXIT_USAGE)
     except HilbertuneError as exc:
-        print(f"hilbertune: failed: {_one_line(exc)}", file=sys.stderr)
-        return EXIT_FAILURE
+        return _fail(as_json, "failed", _one_line(exc), EXIT_FAILURE)
     except KeyboardInterrupt:
-        print("hilbertune: interrupted; finished artifacts and checkpoints are kept, rerun the "
-              "same command to resume", file=sys.stderr)
-        return 130
+        return _fail(as_json, "interrupted", "finished artifacts and checkpoints are kept, "
+                     "rerun the same command to resume", 130, separator="; ")
     except MemoryError:
-        print("hilbertune: failed: out of memory; use fewer qubits or samples, or a smaller "
-              "compute.memory_budget", file=sys.stderr)
-        return EXIT_FAILURE
+        return _fail(as_json, "failed", "out of memory; use fewer qubits or samples, or a "
+                     "smaller compute.memory_budget", EXIT_FAILURE)
     except OSError as exc:
-        print(f"hilbertune: failed: {exc.strerror or exc} ({exc.filename or ''}); check the "
-              "path and permissions", file=sys.stderr)
-        return EXIT_FAILURE
+        return _fail(as_json, "failed", f"{exc.strerror or exc} ({exc.filename or ''}); check "
+                     "the path and permissions", EXIT_FAILURE)
+
+
+def _fail(as_json: bool, kind: str, message: str, code: int, separator: str = ": ") -> int:
+    print(f"hilbertune: {kind}{separator}{message}", file=sys.stderr)
+    if as_json:
+        print(json.dumps({"error": message, "kind": kind, "exit_code": code}, sort_keys=True))
+    return code
 
 
 if __name__ == "__main__":

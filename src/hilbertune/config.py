@@ -29,7 +29,9 @@ def _one_of(*names):
 
 
 SCHEMA = {
-    "seed": (0, int, _NON_NEGATIVE, "one integer that drives every random choice"),
+    # scikit-learn and numpy's legacy generators take seeds below 2**32
+    "seed": (0, int, (f"non-negative and at most {2**32 - 1}", lambda v: 0 <= v <= 2**32 - 1),
+             "one integer that drives every random choice"),
     "data": {
         "source": ("demo", str, None, "'demo', 'csv', or the name of a scikit-learn dataset "
                    "(iris, wine, breast_cancer, digits, moons, circles)"),
@@ -128,7 +130,8 @@ SCHEMA = {
                           "(independent, symmetric; 0 = off; give your device's figure)"),
     },
     "compute": {
-        "memory_budget": ("4GiB", str, None, "memory allowed for states and Gram matrices"),
+        "memory_budget": ("4GiB", str, None, "memory allowed for states and Gram matrices "
+                          "(e.g. '4GiB', '500MB', or an integer number of bytes)"),
         "chunk_size": (0, int, _NON_NEGATIVE,
                        "samples per state chunk (0 = automatic, about 4 MiB of states)"),
         "workers": (0, int, _NON_NEGATIVE, "threads for repeated splits (0 = one per core, at "
@@ -191,6 +194,12 @@ def _spec(dotted: str):
 
 def _coerce(dotted: str, value):
     default, kind, check, _ = _spec(dotted)
+    if dotted == "compute.memory_budget" and isinstance(value, int) and \
+            not isinstance(value, bool):
+        if value < 1:
+            raise InvalidInputError(f"config key '{dotted}' must be at least 1 byte, got "
+                                    f"{value!r}; write e.g. '4GiB'")
+        value = str(value)  # the same text as the quoted number of bytes
     if kind is float and isinstance(value, int) and not isinstance(value, bool):
         value = float(value)
     if kind is bool and not isinstance(value, bool) or \
@@ -309,6 +318,9 @@ def check_selection(config: dict) -> None:
 def load_toml(path) -> dict:
     """Read a TOML file; errors name the file and line and say how to fix them."""
     path = Path(path)
+    if path.is_dir():
+        raise InvalidInputError(f"{str(path)!r} is a folder, not a config file; pass a TOML "
+                                "file (the data go with --data FILE.csv --target COLUMN)")
     if not path.is_file():
         raise InvalidInputError(f"config file {str(path)!r} not found; check the path")
     try:

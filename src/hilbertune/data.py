@@ -29,6 +29,10 @@ MISSING_TOKENS = frozenset({"", "na", "n/a", "nan", "null", "?"})
 #: distinct feature values encode the same state; a range of 2*pi would make both ends
 #: coincide.
 ANGLE_RANGE = (0.0, math.pi)
+# A value this many robust spreads (scaled median absolute deviation) from its column's
+# median is taken for a data error: min-max scaling would squash every other row into one
+# point. Real heavy-tailed columns stay far below (bundled digits: 1.4e3, incomes: ~3e4).
+OUTLIER_LIMIT = 1e6
 
 BUNDLED_NAMES = ("iris", "wine", "breast_cancer", "digits", "moons", "circles")
 
@@ -309,11 +313,13 @@ def load_csv(path, target: str, *, drop_missing: bool = False) -> Dataset:
         raise InvalidInputError(f"{name}: every row has a missing value, nothing is left "
                                 "after dropping; fill in the missing values")
     X = X[keep]
+    feature_names = [header[j] for j in feature_cols]
+    check_feature_values(X, feature_names, [f"line {row_lines[i]}" for i in keep], name)
     y = _rows_to_labels([labels[i] for i in keep])
     classes = np.unique(y)
     if classes.size < 2:
         raise InvalidInputError(f"{name}: column {target!r} has only one class "
-                                f"({classes[0]!r}); classification needs at least two "
+                                f"({str(classes[0])!r}); classification needs at least two "
                                 "classes — check the target column")
     return Dataset(X=X, y=y, feature_names=tuple(header[j] for j in feature_cols),
                    target_name=target,
@@ -321,6 +327,51 @@ def load_csv(path, target: str, *, drop_missing: bool = False) -> Dataset:
                           f", {len(keep)} rows used, {len(bad_rows)} dropped)",
                    sha256=hashlib.sha256(raw).hexdigest(), invented=False,
                    n_dropped=len(bad_rows))
+
+
+def check_feature_values(X, feature_names, row_labels, name: str) -> None:
+    """Refuse feature values no encoding can use: every column constant, or a value so far
+    from its column (``OUTLIER_LIMIT`` robust spreads) that scaling would erase the rest.
+
+    Robust spread: 1.4826 x the median absolute deviation (consistent with the standard
+    deviation for normal data; Rousseeuw & Croux, JASA 88, 1993), or 1.2533 x the mean
+    absolute deviation from the median where more than half the values are equal.
+    """
+    constant = [feature_names[k] for k in range(X.shape[1]) if np.all(X[:, k] == X[0, k])]
+    if len(constant) == X.shape[1]:
+        raise InvalidInputError(f"{name}: every feature column is constant ({_shown(constant)}), "
+                                "so no kernel can tell the rows apart; add columns that vary")
+    with np.errstate(over="ignore", invalid="ignore"):
+        median = np.median(X, axis=0)
+        deviation = np.abs(X - median)
+        spread = 1.4826 * np.median(deviation, axis=0)
+        spread = np.where(spread > 0, spread, 1.2533 * np.mean(deviation, axis=0))
+        score = np.where(spread > 0, deviation / np.where(spread > 0, spread, 1.0), 0.0)
+    extreme = ~(score <= OUTLIER_LIMIT)  # NaN (an overflow) counts as extreme
+    if extreme.any():
+        i, k = (int(v) for v in np.argwhere(extreme)[0])
+        rows = sorted({int(r) for r in np.nonzero(extreme.any(axis=1))[0]})
+        more = f" (and {len(rows) - 1} more row(s))" if len(rows) > 1 else ""
+        raise InvalidInputError(
+            f"{name}: value {X[i, k]:.6g} in column {feature_names[k]!r} at {row_labels[i]}"
+            f"{more} lies more than {OUTLIER_LIMIT:.0e} robust spreads from the column's "
+            "median, so scaling would squash every other row together; correct or remove "
+            "that row, or transform the column (e.g. a logarithm)")
+
+
+def check_new_rows(X_scaled_unclipped, feature_range, feature_names, name: str) -> None:
+    """The same rule for rows to predict: refuse a value that the run's preprocessing puts
+    more than ``OUTLIER_LIMIT`` training ranges outside the training range."""
+    low, high = (float(v) for v in feature_range)
+    with np.errstate(over="ignore", invalid="ignore"):
+        score = np.abs((np.asarray(X_scaled_unclipped) - (low + high) / 2) / (high - low))
+    extreme = ~(score <= OUTLIER_LIMIT)
+    if extreme.any():
+        i, k = (int(v) for v in np.argwhere(extreme)[0])
+        column = feature_names[k] if len(feature_names) == score.shape[1] else f"#{k + 1}"
+        raise InvalidInputError(
+            f"{name}: data row {i + 1} lies more than {OUTLIER_LIMIT:.0e} training ranges "
+            f"outside the run's training data (feature {column}); correct or remove that row")
 
 
 # --------------------------------------------------------------------------- bundled + demo

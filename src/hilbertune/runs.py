@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import functools
 import math
+import os
 import shutil
 import tempfile
 import time
@@ -58,6 +59,73 @@ def feature_count(config: dict, n_columns: int) -> int:
     if enc["family"] == "amplitude":
         return n_columns
     return min(n_columns, enc["qubits"])
+
+
+def check_qubit_request(config: dict) -> None:
+    """Refuse a qubit count that the encoding family would not use.
+
+    Call only when the user asked for ``encoding.qubits`` explicitly: the angle, iqp and
+    basis families use one qubit per feature, the amplitude family ceil(log2(features))
+    per copy; only the layered family takes any count.
+    """
+    enc = config["encoding"]
+    family, wanted = enc["family"], enc["qubits"]
+    if family == "layered":
+        return
+    n_columns = load_dataset(config).X.shape[1]
+    used = build_blueprint(config, feature_count(config, n_columns)).n_qubits
+    if used == wanted:
+        return
+    fixed = (f"data.features = {config['data']['features']} fixes it"
+             if config["data"]["features"] else None)
+    if family == "amplitude":
+        rule = (f"the amplitude encoding uses ceil(log2(features)) x copies = {used} qubit(s) "
+                f"for these data ({fixed or 'change data.features or encoding.copies to change it'})")
+        fix = f"drop --qubits or set it to {used}"
+    else:
+        limit = config["data"]["features"] or n_columns
+        rule = (f"the {family} encoding uses one qubit per feature and the data have {limit} "
+                f"feature(s){' (' + fixed + ')' if fixed else ''}, so it allows at most {limit} "
+                "qubit(s)")
+        fix = f"pass --qubits {used} or fewer, or use encoding.family = 'layered' (any count)"
+    raise InvalidInputError(f"encoding.qubits = {wanted} conflicts with the data: {rule}; {fix}")
+
+
+def check_output_path(out, *, run_dir, inputs=(), overwrite: bool = False) -> None:
+    """Refuse an output file that is an artifact of a run or (without ``overwrite``) one of
+    the command's input files; symlinks and hard links are seen through."""
+    out = Path(out)
+    if out.is_dir():
+        raise InvalidInputError(f"--out {str(out)!r} is a folder; pass a file name such as "
+                                f"{str(out / 'out.txt')!r}")
+    real = out.resolve()
+    if real.exists() and not real.is_file():
+        # an atomic write renames over the path: it would replace a device or a pipe
+        raise InvalidInputError(f"--out {str(out)!r} is not a regular file (a device, pipe or "
+                                "socket); pass a file name, or leave out --out to print")
+    folder = real.parent
+    if (folder / artifacts.MANIFEST).is_file() or (folder / "checkpoints").is_dir():
+        names = set(ARTIFACTS) | {artifacts.MANIFEST}
+        try:
+            listed = artifacts.read_json(folder / artifacts.MANIFEST).get("artifacts", {})
+            names |= set(listed) if isinstance(listed, dict) else set()
+        except (ArtifactError, AttributeError):
+            pass
+        if real.name in names:
+            raise InvalidInputError(f"--out {str(out)!r} is {real.name}, an artifact of the run "
+                                    f"in {str(folder)!r}; writing it would destroy the run: "
+                                    "choose another file name")
+    if out.exists():
+        run_dir = Path(run_dir)
+        for name in ARTIFACTS + (artifacts.MANIFEST,):
+            if (run_dir / name).is_file() and os.path.samefile(out, run_dir / name):
+                raise InvalidInputError(f"--out {str(out)!r} is the same file as {name} of the "
+                                        f"run {str(run_dir)!r}; choose another file name")
+        for given in inputs:
+            if Path(given).is_file() and os.path.samefile(out, given) and not overwrite:
+                raise InvalidInputError(f"--out {str(out)!r} is the input file {str(given)!r}; "
+                                        "choose another file name (or pass --overwrite to "
+                                        "replace the input with the output)")
 
 
 def build_blueprint(config: dict, n_features: int):
@@ -205,19 +273,96 @@ def execute_fit(config: dict, out_dir, *, overwrite: bool = False, progress: boo
         (then only our artifacts are replaced) or it holds an interrupted run of the same
         config (then training resumes from its last checkpoint).
 
+    One writer at a time: the directory is locked for the whole fit, and a second writer
+    is refused (exit 2). A fit that replaces a finished run (or writes among other files)
+    is built in a sibling directory and swapped in only when complete, so the old run
+    survives any failure; a killed replacement resumes from its checkpoints when the same
+    command is run again.
+
     Returns:
       the summary dict (also written to ``summary.json``).
     """
+    from hilbertune import config as cfg
+    from hilbertune import rundir
+
     out_dir = Path(out_dir)
-    fresh = not out_dir.exists()
-    try:
-        return _execute_fit(config, out_dir, overwrite=overwrite, progress=progress)
-    except HilbertuneError:
-        # a failed fit leaves nothing partial behind in a directory it created itself (an
-        # interrupted one, Ctrl-C or a kill, keeps its checkpoints to resume from)
-        if fresh and out_dir.is_dir():
-            shutil.rmtree(out_dir, ignore_errors=True)
-        raise
+    cfg.check_consistency(config)
+    config_text = cfg.dump_toml(config)
+    with rundir.exclusive(out_dir) as target:
+        rundir.recover(target)
+        build = _prepare_build(out_dir, target, overwrite, config_text)
+        in_place = build == target
+        fresh = not build.exists()
+        _drop_damaged_checkpoint(build)
+        try:
+            summary = _execute_fit(config, out_dir if in_place else build,
+                                   overwrite=overwrite or not in_place, progress=progress)
+        except HilbertuneError:
+            # a failed fit leaves nothing partial behind in a directory it created itself (an
+            # interrupted one, Ctrl-C or a kill, keeps its checkpoints to resume from)
+            if (fresh or not in_place) and build.is_dir():
+                shutil.rmtree(build, ignore_errors=True)
+            raise
+        data_path = _resolved_data_path(config)
+        if data_path is not None:
+            artifacts.update_manifest(build, data_path=data_path)
+        if not in_place:
+            rundir.swap_in(build, target, replaced=set(ARTIFACTS) | {
+                artifacts.MANIFEST, "checkpoints"})
+    return summary
+
+
+def _prepare_build(out_dir: Path, target: Path, overwrite: bool, config_text: str) -> Path:
+    """Where this fit writes: ``target`` itself when it is new, empty or an interrupted run
+    (resume); else (``overwrite`` required) the sibling build directory."""
+    from hilbertune import rundir
+
+    if target.exists() and not target.is_dir():
+        raise InvalidInputError(f"--out {str(out_dir)!r} is a file; choose a directory path")
+    if not target.is_dir() or not any(target.iterdir()):
+        return target
+    finished = (target / artifacts.MANIFEST).exists()
+    saved = target / "config.toml"
+    interrupted = not finished and ((target / "checkpoints").is_dir() or (
+        saved.is_file() and saved.read_bytes() == config_text.encode("utf-8")))
+    if interrupted:
+        return target  # resumes (or, another config, is refused or replaced in the fit)
+    if not overwrite:
+        raise InvalidInputError(f"output directory {str(out_dir)!r} already exists and is not "
+                                "empty; choose another --out or pass --overwrite (your other "
+                                "files there are kept)")
+    build = rundir.build_path(target)
+    if build.exists():
+        saved = build / "config.toml"
+        # a build a kill cut short resumes only with the same config; a complete one whose
+        # swap was cut short is older than this request: start again
+        if (build / artifacts.MANIFEST).exists() or not build.is_dir() or not (
+                saved.is_file() and saved.read_bytes() == config_text.encode("utf-8")):
+            if build.is_dir():
+                shutil.rmtree(build)
+            else:
+                build.unlink()
+    return build
+
+
+def _drop_damaged_checkpoint(run_dir: Path) -> None:
+    """A damaged checkpoint is reported and set aside: training restarts from step 0."""
+    import sys
+
+    from hilbertune.training import checkpoint_problem
+
+    checkpoints = run_dir / "checkpoints"
+    problem = checkpoint_problem(checkpoints) if checkpoints.is_dir() else None
+    if problem:
+        print(f"hilbertune: note: {problem}; training restarts from step 0", file=sys.stderr)
+        shutil.rmtree(checkpoints)
+
+
+def _resolved_data_path(config: dict):
+    """The absolute path of a CSV source (symlinks resolved), or None for other sources."""
+    if config["data"]["source"] != "csv":
+        return None
+    return str(Path(config["data"]["path"]).resolve())
 
 
 def _execute_fit(config: dict, out_dir: Path, *, overwrite: bool, progress: bool) -> dict:
@@ -585,6 +730,9 @@ def predict_csv(run_dir, csv_path) -> list:
     X = data.load_features(csv_path, names)
     prep = data.Preprocessing.from_arrays({k[len("prep_"):]: v for k, v in arrays.items()
                                            if k.startswith("prep_")})
+    with np.errstate(all="ignore"):  # overflow is reported below, not as a warning
+        data.check_new_rows(prep._replace(clip=False).transform(X), prep.feature_range,
+                            names if prep.reduce != "pca" else [], str(csv_path))
     X = prep.transform(X)
     X_train, y_train = arrays["X_train"], arrays["y_train"]
     blueprint = build_blueprint(config, X_train.shape[1])
@@ -604,18 +752,83 @@ def export_circuit(run_dir, *, kernel_circuit: bool = False):
     return make(blueprint, params), resource_counts(blueprint)
 
 
-def reproduce_run(run_dir, *, keep=None, progress: bool = False):
+def _check_keep(run_dir, keep, overwrite: bool) -> None:
+    keep = Path(keep)
+    if keep.exists() and not keep.is_dir():
+        raise InvalidInputError(f"--keep {str(keep)!r} is a file; choose a directory path for "
+                                "the rerun")
+    if keep.resolve() == Path(run_dir).resolve():
+        raise InvalidInputError(f"--keep {str(keep)!r} is the run being reproduced; choose "
+                                "another directory for the rerun")
+    if keep.is_dir() and any(keep.iterdir()) and not overwrite:
+        raise InvalidInputError(f"--keep directory {str(keep)!r} already exists and is not "
+                                "empty; choose another --keep or pass --overwrite to replace "
+                                "the run there")
+
+
+def _locate_data(config: dict, manifest: dict, data) -> dict:
+    """The config with a CSV path that exists and holds the recorded data (SHA-256 checked).
+
+    ``data``: a path the user gave (``reproduce --data``), or None: then the saved path,
+    else the resolved path the manifest recorded, is used.
+    """
+    import copy
+    import hashlib
+
+    if config["data"]["source"] != "csv":
+        if data is not None:
+            raise InvalidInputError(f"--data applies to runs on a CSV file; this run used "
+                                    f"{config['data']['source']!r}, drop --data")
+        return config
+    expected = manifest.get("data_sha256")
+    if data is None:
+        candidates = [config["data"]["path"], manifest.get("data_path")]
+        found = next((p for p in candidates if isinstance(p, str) and p and Path(p).is_file()),
+                     None)
+        if found is None:
+            raise InvalidInputError(f"the run's data file {config['data']['path']!r} is not found "
+                                    "from here; pass it with --data PATH (checked against the "
+                                    "recorded SHA-256)")
+        path, given = Path(found), False
+    else:
+        path, given = Path(data), True
+        if not path.is_file():
+            raise InvalidInputError(f"--data {str(path)!r} is not a file; pass the CSV file the "
+                                    "run was made with")
+    digest = hashlib.sha256(path.read_bytes()).hexdigest()
+    if digest != expected:
+        where = f"--data {str(path)!r}" if given else f"the data file {str(path)!r}"
+        raise InvalidInputError(f"{where} is not the file the run was made with (its SHA-256 "
+                                f"{digest[:12]}... differs from the recorded "
+                                f"{str(expected)[:12]}...); pass the original file with --data")
+    config = copy.deepcopy(config)
+    config["data"]["path"] = str(path)
+    return config
+
+
+def reproduce_run(run_dir, *, keep=None, overwrite: bool = False, data=None,
+                  progress: bool = False):
     """Rerun from the saved config and seed; compare parameters and metrics.
+
+    Args:
+      keep: keep the rerun in this directory (refused when it holds files, unless
+        ``overwrite``); None: a temporary directory, deleted afterwards.
+      data: the CSV file of the run when its saved path does not reach it from here; its
+        SHA-256 must equal the recorded one.
 
     Returns:
       (identical: bool, differences: list of readable strings, notes: list of old config
       names mapped to their new ones, e.g. "mapped old name encoding.reps to
       encoding.layers").
     """
+    if keep is not None:
+        _check_keep(run_dir, keep, overwrite)
     config, params, arrays, summary = load_run(run_dir)
+    config = _locate_data(config, artifacts.read_json(Path(run_dir) / artifacts.MANIFEST), data)
     target = Path(keep) if keep else Path(tempfile.mkdtemp(prefix="hilbertune-reproduce-"))
     try:
-        new_summary = execute_fit(config, target, overwrite=keep is not None, progress=progress)
+        new_summary = execute_fit(config, target, overwrite=keep is not None and overwrite,
+                                  progress=progress)
         new_arrays = artifacts.read_npz(target / "params.npz")
         differences = []
         for key in sorted(set(arrays) | set(new_arrays)):

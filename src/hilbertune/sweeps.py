@@ -11,7 +11,7 @@ Sweep description (TOML)::
 
     [sweep]                    # optional
     name = "qubits-vs-steps"   # shown in the report
-    metric = "test_accuracy"   # flattened summary key the report sorts by
+    metric = "selection.cv_accuracy"   # flattened summary key that ranks the trials
     higher_is_better = true
 
     [base]                     # any run configuration (same sections as `hilbertune fit`)
@@ -35,6 +35,14 @@ Grid and random combined: every grid point is run with each of the ``count`` ran
 settings are compared on paired random settings. A key may be in only one of the two.
 Keys may be written quoted (``"training.steps" = [...]``) or as TOML dotted keys
 (``training.steps = [...]``); both mean the same.
+
+Trials are ranked by ``selection.cv_accuracy`` by default: the inner cross-validation
+accuracy of the chosen kernel on the training part. Test accuracy stays in results.csv and
+the report, labelled "not used for ranking": picking the best of many trials by their
+single-split test accuracy would select on the test rows.
+
+Before any trial runs the sweep's size is counted (grid points x draws, nothing built) and
+refused above ``max_trials`` (default ``DEFAULT_MAX_TRIALS``; ``--max-trials`` raises it).
 
 Run directory layout of a sweep::
 
@@ -73,12 +81,17 @@ from hilbertune import config as cfg
 from hilbertune.errors import ArtifactError, InvalidInputError
 
 SWEEP_FORMAT_VERSION = 1
+DEFAULT_METRIC = "selection.cv_accuracy"
+DEFAULT_MAX_TRIALS = 1000
+# metrics measured on each trial's test rows: shown, never used to rank
+TEST_SPLIT_METRICS = ("test_accuracy", "untrained_test_accuracy",
+                      "baselines.rbf_svm.test_accuracy", "baselines.linear_svm.test_accuracy")
 DISTRIBUTIONS = ("choice", "uniform", "log_uniform", "int")
 SWEEP_OPTIONS = {"name": str, "metric": str, "higher_is_better": bool}
 TABLES = ("sweep", "base", "grid", "random")
-FIXED_COLUMNS = ("trial_id", "status", "error", "seconds")
+FIXED_COLUMNS = ("trial_id", "status", "rank", "ranked_by", "error", "seconds")
 # Summary keys the report's table shows next to the swept keys (when present).
-REPORT_METRICS = ("test_accuracy", "train_accuracy", "untrained_test_accuracy",
+REPORT_METRICS = (DEFAULT_METRIC, "test_accuracy", "train_accuracy", "untrained_test_accuracy",
                   "alignment.initial", "alignment.final", "baselines.rbf_svm.test_accuracy",
                   "baselines.linear_svm.test_accuracy")
 BASELINE_LINES = (("baselines.rbf_svm.test_accuracy", "tuned RBF SVM", "--"),
@@ -202,11 +215,13 @@ def _describe(assignments) -> str:
     return ", ".join(f"{k}={v!r}" for k, v in assignments) or "base config"
 
 
-def plan_sweep(description: dict) -> SweepPlan:
+def plan_sweep(description: dict, *, max_trials=None) -> SweepPlan:
     """Validate a sweep description and resolve every trial's configuration.
 
     Args:
       description: the dict read from a sweep TOML (tables sweep, base, grid, random).
+      max_trials: refuse a sweep of more trials (counted before any is built); None:
+        ``DEFAULT_MAX_TRIALS``.
 
     Returns:
       a SweepPlan; nothing is written and nothing runs.
@@ -239,7 +254,7 @@ def plan_sweep(description: dict) -> SweepPlan:
             raise InvalidInputError(f"[sweep] {key} must be a non-empty "
                                     f"{SWEEP_OPTIONS[key].__name__}, got {value!r}")
     name = options.get("name", "sweep")
-    metric = options.get("metric", "test_accuracy")
+    metric = options.get("metric", DEFAULT_METRIC)
     higher = options.get("higher_is_better", True)
 
     try:
@@ -286,6 +301,15 @@ def plan_sweep(description: dict) -> SweepPlan:
             raise InvalidInputError(f"sweep keys {both} are in both [grid] and [random]; "
                                     "keep each key in one of them")
 
+    limit = DEFAULT_MAX_TRIALS if max_trials is None else max_trials
+    n_points = math.prod(len(values) for values in grid.values())
+    n_trials = n_points * max(count, 1)
+    if n_trials > limit:
+        parts = ([f"{n_points} grid points"] if grid else []) + (
+            [f"{count} random draws"] if count else [])
+        raise InvalidInputError(f"the sweep has {n_trials} trials ({' x '.join(parts)}), more "
+                                f"than the limit of {limit}; shrink [grid] or [random] count, "
+                                f"or raise the limit with --max-trials {n_trials}")
     grid_points = [tuple(zip(grid, values)) for values in itertools.product(*grid.values())]
     rng = np.random.default_rng(draw_seed)
     draws = [tuple((key, _draw(rng, *spec)) for key, spec in dists.items())
@@ -373,6 +397,11 @@ def _columns(plan: SweepPlan, rows: list) -> list:
 
 def _write_results(out_dir: Path, plan: SweepPlan, rows_by_id: dict) -> list:
     rows = [rows_by_id[t.trial_id] for t in plan.trials if t.trial_id in rows_by_id]
+    ranked = [r for r in sort_rows(rows, plan.metric, plan.higher_is_better)
+              if r.get("status") == "ok" and _number(r.get(plan.metric))]
+    place = {id(r): n for n, r in enumerate(ranked, start=1)}
+    for row in rows:
+        row["rank"], row["ranked_by"] = place.get(id(row)), plan.metric
     columns = _columns(plan, rows)
     rows = [{k: row.get(k) for k in columns} for row in rows]  # every row has every column
     artifacts.write_csv_rows(out_dir / "results.csv",
@@ -381,16 +410,64 @@ def _write_results(out_dir: Path, plan: SweepPlan, rows_by_id: dict) -> list:
 
 
 def read_results(out_dir) -> list:
-    """Rows of a sweep's ``results.csv`` with numbers, booleans and lists parsed back."""
+    """Rows of a sweep's ``results.csv`` with numbers, booleans and lists parsed back.
+
+    Raises:
+      ArtifactError when the file is not a table this module wrote (binary garbage, a
+      ragged row, no trial_id/status columns); ``run_sweep`` then rebuilds it from the
+      trial directories.
+    """
     import csv
 
     path = Path(out_dir) / "results.csv"
     if not path.is_file():
         return []
-    with open(path, newline="", encoding="utf-8") as handle:
-        rows = list(csv.DictReader(handle))
-    return [{k: (v if k in ("trial_id", "status", "error") else _parse_cell(v))
+    try:
+        with open(path, newline="", encoding="utf-8") as handle:
+            reader = csv.DictReader(handle)
+            rows = list(reader)
+            columns = reader.fieldnames or []
+    except (UnicodeDecodeError, csv.Error) as exc:
+        raise ArtifactError(f"results.csv in {str(out_dir)!r} is damaged ({exc})") from None
+    if "trial_id" not in columns or "status" not in columns:
+        raise ArtifactError(f"results.csv in {str(out_dir)!r} is damaged (no trial_id and "
+                            "status columns)")
+    for number, row in enumerate(rows, start=2):
+        if None in row or any(v is None for v in row.values()):
+            raise ArtifactError(f"results.csv in {str(out_dir)!r} is damaged (line {number} "
+                                f"does not have the header's {len(columns)} cells)")
+    return [{k: (v if k in ("trial_id", "status", "error", "ranked_by") else _parse_cell(v))
              for k, v in row.items()} for row in rows]
+
+
+def _trial_problem(trial_dir: Path, *, writes_manifest: bool):
+    """Why a trial recorded as finished cannot be skipped, or None."""
+    if not trial_dir.is_dir():
+        return "its run directory is missing"
+    if (trial_dir / artifacts.MANIFEST).is_file() or writes_manifest:
+        try:
+            artifacts.verify_run(trial_dir)
+        except ArtifactError as exc:
+            return " ".join(str(exc).split())
+    return None
+
+
+def _rows_from_trials(out_dir: Path, plan: SweepPlan) -> dict:
+    """Rows of the trials whose run directories verify (summary.json read back)."""
+    rows = {}
+    for trial in plan.trials:
+        trial_dir = out_dir / "trials" / trial.trial_id
+        if _trial_problem(trial_dir, writes_manifest=True) is not None:
+            continue
+        try:
+            summary = artifacts.read_json(trial_dir / "summary.json")
+        except ArtifactError:
+            continue
+        if isinstance(summary, dict):
+            rows[trial.trial_id] = _make_row(trial, {
+                "status": "ok", "error": "", "seconds": float(summary.get("wall_time_s") or 0),
+                "metrics": flatten_summary(summary)})
+    return rows
 
 
 def _make_row(trial: Trial, outcome: dict) -> dict:
@@ -657,13 +734,16 @@ def _sweep_record(plan: SweepPlan) -> dict:
 
 def run_sweep(description: dict, out_dir, *, workers: int = 1, scheduler: str | None = None,
               trial_fn=None, progress: bool = False, processes: bool = True,
-              connect_timeout: float = 10.0) -> list:
+              connect_timeout: float = 10.0, max_trials=None) -> list:
     """Run every trial of a sweep; write results.csv, sweep.json and sweep_report.html.
 
     Args:
       description: the sweep description (see the module docstring).
       out_dir: sweep directory. Rerunning into the same directory skips the trials already
-        finished OK (resume); a directory holding a different sweep is refused.
+        finished OK whose run directories still verify against their manifests (resume;
+        a missing or damaged one runs again); a directory holding a different sweep is
+        refused, and so is one another sweep is writing. A damaged results.csv is rebuilt
+        from the trial directories.
       workers: parallel trials. With ``scheduler=None`` and ``workers > 1`` trials run in
         joblib worker processes, each pinned to its share of the CPUs.
       scheduler: None (local), ``"local"`` (a Dask LocalCluster on 127.0.0.1 with
@@ -674,27 +754,55 @@ def run_sweep(description: dict, out_dir, *, workers: int = 1, scheduler: str | 
       progress: print one line per finished trial to stderr.
       processes: for ``scheduler="local"``: worker processes (True) or threads (False).
       connect_timeout: seconds to reach a scheduler before giving up.
+      max_trials: refuse sweeps of more trials (None: ``DEFAULT_MAX_TRIALS``).
 
     Returns:
       the results table as a list of row dicts, in trial order: trial_id, status ("ok" or
       "failed"), error, seconds, every swept key, every flattened summary metric.
     """
-    plan = plan_sweep(description)
+    plan = plan_sweep(description, max_trials=max_trials)
     if not isinstance(workers, int) or isinstance(workers, bool) or workers < 1:
         raise InvalidInputError(f"workers must be a positive integer, got {workers!r}")
     out_dir = Path(out_dir).resolve()
     _check_out_dir(out_dir, plan)
+    from hilbertune import rundir
 
-    previous = {row["trial_id"]: row for row in read_results(out_dir)}
+    with rundir.exclusive(out_dir, what="sweep directory"):
+        return _run_locked(plan, out_dir, workers=workers, scheduler=scheduler,
+                           trial_fn=trial_fn, progress=progress, processes=processes,
+                           connect_timeout=connect_timeout)
+
+
+def _say(progress: bool, text: str) -> None:
+    if progress:
+        print(text, file=sys.stderr)
+
+
+def _run_locked(plan: SweepPlan, out_dir: Path, *, workers, scheduler, trial_fn, progress,
+                processes, connect_timeout) -> list:
+    try:
+        previous = {row["trial_id"]: row for row in read_results(out_dir)}
+    except ArtifactError as exc:
+        previous = _rows_from_trials(out_dir, plan)
+        _say(progress, f"sweep: {exc}; rebuilt it from {len(previous)} verified trial "
+                       "director(y/ies), the other trials run again")
     known = {t.trial_id for t in plan.trials}
     rows_by_id = {}
-    for trial in plan.trials:  # finished OK before: keep the row, skip the trial
+    for trial in plan.trials:  # finished OK before and still intact: keep the row, skip it
         row = previous.get(trial.trial_id)
-        if row is not None and row.get("status") == "ok":
-            row.update(dict(trial.assignments))  # typed values, not their CSV text
-            rows_by_id[trial.trial_id] = row
+        if row is None or row.get("status") != "ok":
+            continue
+        problem = _trial_problem(out_dir / "trials" / trial.trial_id,
+                                 writes_manifest=trial_fn is None)
+        if problem is not None:
+            _say(progress, f"sweep: trial {trial.trial_id} was recorded as finished but "
+                           f"{problem}; running it again")
+            continue
+        row.update(dict(trial.assignments))  # typed values, not their CSV text
+        rows_by_id[trial.trial_id] = row
     rows_by_id.update({k: v for k, v in previous.items()
-                       if k in known and k not in rows_by_id})  # failed before: shown until rerun
+                       if k in known and k not in rows_by_id
+                       and v.get("status") != "ok"})  # failed before: shown until rerun
     pending = [t for t in plan.trials if rows_by_id.get(t.trial_id, {}).get("status") != "ok"]
 
     # reach the scheduler (or start the local cluster) before writing anything
@@ -703,9 +811,8 @@ def run_sweep(description: dict, out_dir, *, workers: int = 1, scheduler: str | 
         out_dir.mkdir(parents=True, exist_ok=True)
         artifacts.write_json(out_dir / "sweep.json", _sweep_record(plan))
         total, skipped = len(plan.trials), len(plan.trials) - len(pending)
-        if progress:
-            print(f"sweep {plan.name!r}: {total} trials, {skipped} already finished "
-                  f"(skipped), {len(pending)} to run", file=sys.stderr)
+        _say(progress, f"sweep {plan.name!r}: {total} trials, {skipped} already finished "
+                       f"and verified (skipped), {len(pending)} to run")
         if runner is not None:
             outcomes = _run_dask(pending, trial_fn, out_dir, runner)
         elif workers > 1 and len(pending) > 1:
@@ -796,7 +903,7 @@ def _metric_plot(plan: SweepPlan, rows: list, key: str) -> str:
         pos = [labels.index(json.dumps(x) if isinstance(x, list) else str(x)) for x in xs]
         ax.scatter(pos, ys, s=22, alpha=0.75, label="trials")
         ax.set_xticks(range(len(labels)), labels, rotation=20)
-    if plan.metric.endswith("accuracy"):  # baselines are accuracies: same axis only then
+    if plan.metric in TEST_SPLIT_METRICS:  # baselines are test accuracies: same axis only then
         for label, value, style in _baseline_means(rows):
             ax.axhline(value, ls=style, color="0.3", lw=1.1, label=f"{label} (mean {value:.3f})")
     ax.set_xlabel(key)
@@ -804,6 +911,12 @@ def _metric_plot(plan: SweepPlan, rows: list, key: str) -> str:
     ax.grid(alpha=0.3)
     ax.legend(fontsize=7, loc="best")
     return _figure_png(fig)
+
+
+def _ranking_label(plan: SweepPlan, metric: str) -> str:
+    if metric in TEST_SPLIT_METRICS and metric != plan.metric:
+        return "<br><small>(test split, not used for ranking)</small>"
+    return ""
 
 
 def _fmt(value) -> str:
@@ -835,6 +948,12 @@ def sweep_report_html(plan: SweepPlan, rows: list) -> str:
         f"{len(failed)} failed. Sorted by <b>{esc(plan.metric)}</b> "
         f"({'higher' if plan.higher_is_better else 'lower'} is better). Description hash "
         f"<code>{esc(plan.description_hash[:12])}</code>.</p>",
+        ("<p class='note'><b>Caution:</b> this sweep ranks trials by a test-split metric, "
+         "which selects on the test rows; the best trial's score is then biased upward. "
+         f"Rank by {esc(DEFAULT_METRIC)} (inner cross-validation on the training part) "
+         "instead.</p>" if plan.metric in TEST_SPLIT_METRICS else
+         "<p class='note'>Columns marked <i>not used for ranking</i> are measured on each "
+         "trial's test rows; they are shown, never used to pick a trial.</p>"),
         "<p class='note'>All quantum kernels were simulated exactly on a classical computer; "
         "a simulated kernel is no evidence about quantum hardware. The best of many trials "
         "is an optimistic estimate: confirm it on fresh splits before trusting it.</p>",
@@ -846,7 +965,7 @@ def sweep_report_html(plan: SweepPlan, rows: list) -> str:
                      + "</p>")
     parts.append("<h2>Trials</h2><table><tr><th>#</th><th>trial</th><th>status</th>"
                  + "".join(f"<th>{esc(k)}</th>" for k in plan.swept_keys)
-                 + "".join(f"<th>{esc(m)}</th>" for m in shown)
+                 + "".join(f"<th>{esc(m)}{_ranking_label(plan, m)}</th>" for m in shown)
                  + "<th>seconds</th><th>error</th></tr>")
     for rank, row in enumerate(ordered, start=1):
         tid = esc(str(row["trial_id"]))
@@ -862,7 +981,7 @@ def sweep_report_html(plan: SweepPlan, rows: list) -> str:
     parts.append("</table>")
     if any(_number(r.get(plan.metric)) for r in ok):
         parts.append(f"<h2>{esc(plan.metric)} against each swept key</h2>")
-        if plan.metric.endswith("accuracy") and baselines:
+        if plan.metric in TEST_SPLIT_METRICS and baselines:
             parts.append("<p class='note'>Horizontal lines: classical baselines (mean over "
                          "trials).</p>")
         for key in plan.swept_keys:
@@ -887,7 +1006,7 @@ def render_sweep_report(out_dir) -> str:
     rand = record["description"]["random"]
     if rand:
         description["random"] = {"count": rand["count"], "seed": rand["seed"], **rand["keys"]}
-    plan = plan_sweep(description)
+    plan = plan_sweep(description, max_trials=math.inf)  # it was accepted when it ran
     text = sweep_report_html(plan, read_results(out_dir))
     artifacts.write_text(out_dir / "sweep_report.html", text)
     return text

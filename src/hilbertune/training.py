@@ -24,6 +24,7 @@ import json
 import math
 import os
 import time
+import zipfile
 from typing import NamedTuple
 
 import numpy as np
@@ -624,14 +625,49 @@ def _save_checkpoint(directory, *, fingerprint, seed, objective, state, opt_stat
                           json.dumps(summary, indent=2).encode())
 
 
-def _load_checkpoint(directory, fingerprint, opt_template):
+def checkpoint_problem(directory) -> str | None:
+    """Why the checkpoint in ``directory`` cannot be trusted, or None (also when absent).
+
+    Like run artifacts, a checkpoint is checked against the SHA-256 recorded beside it
+    (``checkpoint.json``). A mismatch is accepted only when the archive reads back whole
+    (every member's CRC) and is newer than the record: a kill between the two atomic writes
+    of ``_save_checkpoint`` leaves exactly that.
+    """
     path = os.path.join(directory, CHECKPOINT_NPZ)
     if not os.path.exists(path):
         return None
     try:
+        with open(os.path.join(directory, CHECKPOINT_JSON), encoding="utf-8") as stream:
+            record = json.load(stream)
+        expected = record.get("npz_sha256") if isinstance(record, dict) else None
+    except (OSError, ValueError):
+        record, expected = {}, None
+    if expected is not None and artifacts.sha256_file(path) == expected:
+        return None
+    try:
+        with np.load(path, allow_pickle=False) as data:
+            meta = json.loads(data["meta_json"].tobytes().decode())
+            for key in data.files:
+                data[key]  # reads the member: zipfile checks its CRC-32
+    except (OSError, ValueError, KeyError, EOFError, zipfile.BadZipFile) as exc:
+        return f"checkpoint {path} is damaged ({' '.join(str(exc).split())})"
+    step = record.get("step") if isinstance(record, dict) else None
+    if expected is None or not isinstance(step, int) or meta.get("next_step", -1) <= step:
+        return f"checkpoint {path} is damaged (its SHA-256 differs from {CHECKPOINT_JSON})"
+    return None
+
+
+def _load_checkpoint(directory, fingerprint, opt_template):
+    path = os.path.join(directory, CHECKPOINT_NPZ)
+    if not os.path.exists(path):
+        return None
+    problem = checkpoint_problem(directory)
+    if problem:
+        raise ArtifactError(f"{problem}; delete it or pass resume=False")
+    try:
         with np.load(path, allow_pickle=False) as data:
             arrays = {key: data[key] for key in data.files}
-    except (OSError, ValueError) as exc:
+    except (OSError, ValueError, zipfile.BadZipFile) as exc:
         raise ArtifactError(f"checkpoint {path} cannot be read ({exc}); delete it or pass "
                             "resume=False") from None
     meta = json.loads(arrays["meta_json"].tobytes().decode())
