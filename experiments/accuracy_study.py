@@ -422,6 +422,10 @@ def analyse(raw: dict) -> dict:
                      "gap_to_untrained": gap_untrained, "gap_to_rbf": gap_rbf,
                      "worst_dataset": worst, "worst_gap": gap_untrained[worst],
                      "datasets_gaining_1pt": gains, "median_gap_to_rbf": median_rbf,
+                     "mean_gain": float(np.mean(list(gap_untrained.values()))),
+                     "learned_share": float(np.mean([name != "untrained"
+                                                     for v in choices.values()
+                                                     for name in v])),
                      "targets": targets, "targets_met": sum(targets.values()),
                      "replay_matches_run": replay_ok if label == "R4" else None})
     order = sorted(range(len(sets)), key=lambda i: (-sets[i]["targets_met"],
@@ -513,13 +517,15 @@ def write_markdown(raw: dict, result: dict, path: Path) -> None:
              "of (tuned RBF - selected) at most 1 pt. Trainings: `train_encoding` calls per "
              "selection (one per scope and objective per inner fold, plus the final one).\n")
     L.append("| set | candidates | rule | trainings | worst gap to untrained (pt, dataset) "
-             "| datasets >= +1 pt | median gap to RBF (pt) | targets met |")
-    L.append("|---|---|---|---|---|---|---|---|")
+             "| datasets >= +1 pt | mean gain over untrained (pt) | runs choosing other than "
+             "untrained | median gap to RBF (pt) | targets met |")
+    L.append("|---|---|---|---|---|---|---|---|---|---|")
     for s in result["sets"]:
         marks = "".join("Y" if v else "n" for v in s["targets"].values())
         L.append(f"| {s['label']}: {s['description']} | {s['size']} | {s['rule']} | "
                  f"{s['trainings']} | {pt(s['worst_gap'])} ({s['worst_dataset']}) | "
-                 f"{s['datasets_gaining_1pt']} | {100 * s['median_gap_to_rbf']:.1f} | "
+                 f"{s['datasets_gaining_1pt']} | {pt(s['mean_gain'])} | "
+                 f"{100 * s['learned_share']:.0f}% | {100 * s['median_gap_to_rbf']:.1f} | "
                  f"{s['targets_met']} ({marks}) |")
     L.append("")
     L.append("'targets met' spells out (1)(2)(3) as Y / n.\n")

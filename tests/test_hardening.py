@@ -885,7 +885,8 @@ def test_item4_a_killed_overwrite_keeps_the_old_run_and_resumes(finished_run, mo
     shutil.copytree(finished_run, out)
     before = snapshot(out)
     command = fit_command(moons_csv, out) + ["--overwrite"]
-    marker = rundir.build_path(out) / "checkpoints" / "checkpoint.json"
+    marker = (rundir.build_path(out) / "checkpoints" / "full-centered_alignment"
+              / "checkpoint.json")
     process = subprocess.Popen(command, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
     deadline = time.monotonic() + 240
     try:
@@ -1033,7 +1034,8 @@ def test_item7_a_damaged_checkpoint_is_reported_and_training_restarts(moons_csv,
     argv = ["fit", "--data", moons_csv, "--target", "kind", "--qubits", "2", "--out", out,
             "--quiet", *TINY]
     config = cli._fit_config(cli.build_parser().parse_args([str(a) for a in argv]))
-    checkpoints = _real_checkpoint(out / "checkpoints")
+    # where the fit keeps the checkpoints of its fully learned candidate's training run
+    checkpoints = _real_checkpoint(out / "checkpoints" / "full-centered_alignment")
     (out / "config.toml").write_text(cfg.dump_toml(config))  # an interrupted run
     npz = checkpoints / "checkpoint.npz"
     payload = bytearray(npz.read_bytes())

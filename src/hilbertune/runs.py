@@ -352,10 +352,17 @@ def _drop_damaged_checkpoint(run_dir: Path) -> None:
     from hilbertune.training import checkpoint_problem
 
     checkpoints = run_dir / "checkpoints"
-    problem = checkpoint_problem(checkpoints) if checkpoints.is_dir() else None
-    if problem:
-        print(f"hilbertune: note: {problem}; training restarts from step 0", file=sys.stderr)
-        shutil.rmtree(checkpoints)
+    if not checkpoints.is_dir():
+        return
+    # one folder per training run of the main split (checkpoints/<scope>-<objective>)
+    for folder in [checkpoints] + sorted(p for p in checkpoints.iterdir() if p.is_dir()):
+        problem = checkpoint_problem(folder)
+        if problem:
+            print(f"hilbertune: note: {problem}; training restarts from step 0",
+                  file=sys.stderr)
+            shutil.rmtree(folder)
+            if folder == checkpoints:
+                return
 
 
 def _resolved_data_path(config: dict):
