@@ -266,6 +266,20 @@ def test_device_path_has_no_callbacks_where_the_host_path_has_one(monkeypatch):
     assert not any("callback" in name for name in names(device))
 
 
+def test_a_compiled_training_gram_follows_a_change_of_path(monkeypatch):
+    # the decision is made while tracing: a function compiled on one path must be traced
+    # again after a switch, not reuse its cached program
+    monkeypatch.setattr(training, "HOST_PRODUCT_WORK", 1)
+    compiled = jax.jit(training.symmetric_fidelity_gram)
+    states = jnp.ones((4, 8), jnp.complex64) / math.sqrt(8)
+    with kernels.engine_path("host"):
+        compiled(states)
+        assert "callback" in compiled.lower(states).as_text()
+    with kernels.engine_path("device"):
+        compiled(states)
+        assert "callback" not in compiled.lower(states).as_text()
+
+
 def _dot_precisions(jaxpr):
     return [eqn.params.get("precision") for eqn in _primitives(jaxpr.jaxpr)
             if eqn.primitive.name == "dot_general"]

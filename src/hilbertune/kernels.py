@@ -64,14 +64,16 @@ def device_path() -> bool:
 def set_engine_path(path: str) -> None:
     """Choose the engine path: "auto", "host" (BLAS on concrete states) or "device".
 
-    The path is read when a function is traced, so a change clears JAX's compilation
-    caches (compiled training steps are traced again with the new path).
+    The training Gram reads the path when it is traced, so a change of the effective path
+    clears JAX's compilation caches (compiled training steps are traced again with the
+    new path; switch once, not per call).
     """
     if path not in ENGINE_PATHS:
         raise InvalidInputError(f"engine path must be one of {', '.join(ENGINE_PATHS)}, "
                                 f"got {path!r}")
-    if path != _ENGINE["path"]:
-        _ENGINE["path"] = path
+    before = device_path()
+    _ENGINE["path"] = path
+    if device_path() != before:
         jax.clear_caches()
 
 
