@@ -395,3 +395,24 @@ def test_budget_refers_to_device_memory_and_guard_refuses_before_allocating(monk
         with pytest.raises(ResourceLimitError, match="budget"):
             kernels.quantum_gram(bp, encodings_params(bp, rng),
                                  rng.uniform(-1, 1, size=(300, 10)), memory_budget="4GiB")
+
+
+# --------------------------------------------------------------------------- benchmarks
+
+def test_gram_benchmark_measures_both_paths_side_by_side():
+    import json
+    import os
+    import subprocess
+    import sys
+    from pathlib import Path
+
+    script = Path(__file__).resolve().parents[1] / "experiments" / "bench_gram.py"
+    done = subprocess.run([sys.executable, str(script), "--quick", "--device-path", "--only",
+                           "product", "--repeats", "1"], capture_output=True, text=True,
+                          timeout=600, env={**os.environ}, check=False)
+    assert done.returncode == 0, done.stderr[-2000:]
+    report = json.loads(done.stdout)
+    assert report["engine"]["paths"] == ["host", "device"]
+    assert report["engine"]["compute_device_device_path"].endswith("(device path)")
+    both = report["paths_side_by_side"]["product.ratio_total_over_rbf"]
+    assert both["host"] > 0 and both["device"] > 0
