@@ -17,16 +17,15 @@ from hilbertune.circuits import AngleRule, Blueprint, Step, encode_states, produ
 from hilbertune.errors import InvalidInputError, ResourceLimitError
 
 
-@pytest.fixture
-def on_device():
-    """Run the test body on the forced device path, then restore the previous path."""
-    with kernels.engine_path("device"):
-        assert kernels.device_path()
-        yield
-
-
 def _layered(n=4, layers=2):
     return encodings.reuploading_layers(n, layers=layers, entangler="ring", entangler_gate="cz")
+
+
+def encodings_params(bp, rng):
+    p = bp.n_slots
+    return {"weights": rng.normal(size=p).astype(np.float32),
+            "biases": rng.normal(size=p).astype(np.float32),
+            "log_bandwidth": np.float32(math.log(rng.uniform(0.5, 1.5)))}
 
 
 def _host_and_device(fn):
@@ -79,13 +78,6 @@ def test_device_path_returns_device_arrays_and_host_path_numpy(rng):
     host, device = _host_and_device(lambda: kernels.quantum_gram(bp, params, X))
     assert isinstance(host, np.ndarray)  # herk on the host
     assert isinstance(device, jax.Array)  # stayed on the device
-
-
-def encodings_params(bp, rng):
-    p = bp.n_slots
-    return {"weights": rng.normal(size=p).astype(np.float32),
-            "biases": rng.normal(size=p).astype(np.float32),
-            "log_bandwidth": np.float32(math.log(rng.uniform(0.5, 1.5)))}
 
 
 # --------------------------------------------------------------------------- same numbers
