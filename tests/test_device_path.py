@@ -110,6 +110,11 @@ def test_test_versus_train_gram_device_equals_host_and_reference(block_rows, den
     reference = _reference_gram(dense.states(bp, params, Y), dense.states(bp, params, X))
     np.testing.assert_allclose(np.asarray(device), reference, atol=2e-5)
     np.testing.assert_allclose(np.asarray(device), host, atol=1e-5)
+    # the symmetric Gram in row blocks too
+    host, device = _host_and_device(lambda: kernels.fidelity_gram(s_y, block_rows=block_rows))
+    reference = _reference_gram(dense.states(bp, params, Y), dense.states(bp, params, Y))
+    np.testing.assert_allclose(np.asarray(device), reference, atol=2e-5)
+    np.testing.assert_allclose(np.asarray(device), host, atol=1e-5)
 
 
 def test_training_value_and_gradient_device_equal_host_and_reference(dense, rng, monkeypatch):
