@@ -17,13 +17,20 @@ one untimed warm-up call that pays for XLA compilation):
    a numpy RBF Gram of the same size (squared distances by one GEMM, then exp).
    Target: ratio <= 2.
 
-Usage: ``python experiments/bench_gram.py [--quick] [--repeats R] [--seed S]``.
+Usage: ``python experiments/bench_gram.py [--quick] [--repeats R] [--seed S] [--device-path]``.
 ``--quick`` shrinks every size (CI smoke test); its ratios are not the targets' figures.
+The JSON names the backend and the engine path measured (``engine``): on a CPU the host
+path (BLAS ``herk``/``gemm``, numpy tiles), on a GPU the device path (pure XLA).
+``--device-path`` measures everything twice, first on the host path, then on the device
+path forced (``kernels.engine_path``; on a CPU this times the GPU code's XLA programs),
+each against its own baselines timed in the same block, and prints the ratios side by
+side (``paths_side_by_side``).
 """
 
 from __future__ import annotations
 
 import argparse
+import contextlib
 import json
 import os
 import platform
@@ -130,7 +137,9 @@ def bench_per_pair(cfg, repeats, rng):
     def run_single_calls():
         return [per_pair(bp, params, xa[s:s + 1], xb[s:s + 1]) for s in range(singles)]
 
-    states = np.asarray(circuits.encode_states(bp, params, X))
+    states = circuits.encode_states(bp, params, X)
+    if not kernels.device_path():  # the host path's input: numpy states, as a fit has them
+        states = np.asarray(states)
     timings = _side_by_side({"gram": lambda: kernels.quantum_gram(bp, params, X),
                              "stage_gram_from_states": lambda: kernels.fidelity_gram(states),
                              "per_pair_subsample": run_pairs,
@@ -202,10 +211,11 @@ def main(argv=None):
     parser.add_argument("--repeats", type=int, default=None, help="timed repeats per side")
     parser.add_argument("--seed", type=int, default=0)
     parser.add_argument("--only", choices=["layered", "per_pair", "product"], default=None)
+    parser.add_argument("--device-path", action="store_true",
+                        help="measure the host path and the forced device path side by side")
     args = parser.parse_args(argv)
     sizes = QUICK if args.quick else FULL
     repeats = args.repeats or (2 if args.quick else 5)
-    rng = np.random.default_rng(args.seed)
     result = {
         "mode": "quick" if args.quick else "full",
         "repeats": repeats,
@@ -216,9 +226,26 @@ def main(argv=None):
                     "load_average_at_start": list(os.getloadavg())},
     }
     benches = {"layered": bench_layered, "per_pair": bench_per_pair, "product": bench_product}
-    for name, bench in benches.items():
-        if args.only in (None, name):
-            result[name] = bench(sizes[name], repeats, rng)
+    # one block per path (switching paths clears JAX's caches, so they cannot alternate
+    # call by call); each block times its own baselines, so its ratios are side by side
+    paths = [("", "host"), ("_device_path", "device")] if args.device_path else [("", None)]
+    result["engine"] = {"backend": jax.default_backend(),
+                        "paths": [path or ("device" if kernels.device_path() else "host")
+                                  for _, path in paths]}
+    for suffix, path in paths:
+        with kernels.engine_path(path) if path else contextlib.nullcontext():
+            result["engine"]["compute_device" + suffix] = kernels.compute_device()
+            rng = np.random.default_rng(args.seed)  # the same data on both paths
+            for name, bench in benches.items():
+                if args.only in (None, name):
+                    result[name + suffix] = bench(sizes[name], repeats, rng)
+    if args.device_path:
+        keys = {"layered": "ratio_total_over_baseline", "per_pair": "speedup",
+                "product": "ratio_total_over_rbf"}
+        result["paths_side_by_side"] = {
+            f"{name}.{key}": {"host": result[name][key],
+                              "device": result[name + "_device_path"][key]}
+            for name, key in keys.items() if name in result}
     result["machine"]["load_average_at_end"] = list(os.getloadavg())
     json.dump(result, sys.stdout, indent=2)
     sys.stdout.write("\n")

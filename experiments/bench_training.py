@@ -25,7 +25,12 @@ warm-up call that compiles):
     ratio of the two products alone (the floor if the circuit cost nothing).
 Default problem: 12 qubits, N = 2000, layered encoding with 2 layers (target ratio
 value_and_grad / forward <= 2.5). ``--quick``: 8 qubits, N = 256 (a smoke check).
-Prints one JSON object.
+Prints one JSON object, naming the engine path measured (``engine_path``: "host" for
+BLAS ``herk`` through a callback, the default on a CPU; "device" for pure XLA, the
+default on a GPU). ``--device-path`` measures everything on the host path, then again on
+the forced device path (``device_path`` in the JSON), with the main ratios side by side
+(``paths_side_by_side``); the ``host_overlap_herk`` and ``reference_host_cgemm`` parts
+stay host references on both.
 """
 
 from __future__ import annotations
@@ -46,7 +51,8 @@ from scipy.linalg import blas
 sys.path.insert(0, os.path.join(os.path.dirname(__file__), "..", "src"))
 
 from hilbertune import build_encoding, initial_params  # noqa: E402
-from hilbertune.kernels import gram_for_training, quantum_gram  # noqa: E402
+from hilbertune.kernels import (compute_device, device_path, engine_path,  # noqa: E402
+                                gram_for_training, quantum_gram)
 from hilbertune.circuits import encode_states  # noqa: E402
 from hilbertune.training import (_compiled_step, _host_overlap, _StaticConfig,  # noqa: E402
                                  planar_matmul, training_gram, training_loss_function)
@@ -64,10 +70,37 @@ def main(argv=None):
     parser.add_argument("--repeats", type=int, default=5)
     parser.add_argument("--qubits", type=int, default=None)
     parser.add_argument("--samples", type=int, default=None)
+    parser.add_argument("--device-path", action="store_true",
+                        help="measure the host path and the forced device path side by side")
     args = parser.parse_args(argv)
     n_qubits = args.qubits or (8 if args.quick else 12)
     n_samples = args.samples or (256 if args.quick else 2000)
+    if not args.device_path:
+        report = measure(n_qubits, n_samples, args.repeats)
+        report["engine_path"] = "device" if device_path() else "host"
+        report["compute_device"] = compute_device()
+        print(json.dumps(report, indent=2))
+        return
+    # one block per path (switching paths clears JAX's caches, so they cannot alternate
+    # call by call); every ratio's two sides are timed in the same block
+    with engine_path("host"):
+        report = measure(n_qubits, n_samples, args.repeats)
+        report["engine_path"], report["compute_device"] = "host", compute_device()
+    with engine_path("device"):
+        device = measure(n_qubits, n_samples, args.repeats)
+        device["engine_path"], device["compute_device"] = "device", compute_device()
+    report["device_path"] = device
+    report["paths_side_by_side"] = {
+        key: {"host": report[key], "device": device[key]}
+        for key in ("ratio_value_and_grad_to_forward", "ratio_optimizer_step_to_forward",
+                    "ratio_value_and_grad_to_forward_pairwise_median",
+                    "ratio_value_and_grad_to_forward_xla", "forward_gram_s",
+                    "value_and_grad_s", "minibatch_steps_per_s")}
+    print(json.dumps(report, indent=2))
 
+
+def measure(n_qubits: int, n_samples: int, repeats: int) -> dict:
+    """Every timing and ratio of the module docstring, on the current engine path."""
     rng = np.random.default_rng(0)  # invented data: uniform features, random balanced labels
     X = jnp.asarray(rng.uniform(-1.0, 1.0, size=(n_samples, n_qubits)), jnp.float32)
     y = jnp.asarray(rng.permutation(np.arange(n_samples) % 2), jnp.int32)
@@ -125,7 +158,7 @@ def main(argv=None):
              "value_and_grad": [], "optimizer_step": []}
     part_times = {k: [] for k in parts}
     # one loop: every repeat times everything, so the parts and the whole see the same load
-    for _ in range(args.repeats):
+    for _ in range(repeats):
         times["forward"].append(timed(forward, params, X))
         times["value_and_grad"].append(timed(value_and_grad, params, X, y))
         times["forward_xla"].append(timed(forward_xla, params, X))
@@ -144,13 +177,13 @@ def main(argv=None):
     batch_step, _, _ = _compiled_step(blueprint, batch_config)
     compile_s["minibatch_step"] = timed(batch_step, *step_args)
     batch_times = []
-    for t in range(max(20, 4 * args.repeats)):
+    for t in range(max(20, 4 * repeats)):
         batch_args = step_args[:-1] + (jax.random.key(100 + t),)
         batch_times.append(timed(batch_step, *batch_args))
 
     report = {
         "n_qubits": n_qubits, "n_samples": n_samples, "family": "layered", "layers": 2,
-        "objective": "centered_alignment", "repeats": args.repeats,
+        "objective": "centered_alignment", "repeats": repeats,
         "forward_gram_s": medians["forward"],
         "forward_gram_xla_s": medians["forward_xla"],
         "forward_training_gram_s": medians["forward_training_gram"],
@@ -196,7 +229,7 @@ def main(argv=None):
         "platform": platform.platform(), "cpu_count": os.cpu_count(),
         "jax": jax.__version__, "backend": jax.default_backend(),
     }
-    print(json.dumps(report, indent=2))
+    return report
 
 
 if __name__ == "__main__":

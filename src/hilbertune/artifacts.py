@@ -119,12 +119,17 @@ def sha256_file(path) -> str:
 
 
 def library_versions() -> dict:
+    """Versions of Python and the libraries, plus ``compute_device``: where JAX computes
+    and which engine path (``kernels.compute_device``), e.g. "cpu: cpu (host BLAS path)"."""
+    from hilbertune.kernels import compute_device
+
     versions = {"python": sys.version.split()[0]}
     for name in ("hilbertune", "jax", "jaxlib", "numpy", "scipy", "scikit-learn", "optax"):
         try:
             versions[name] = metadata.version(name)
         except metadata.PackageNotFoundError:
             versions[name] = "not installed"
+    versions["compute_device"] = compute_device()
     return versions
 
 

@@ -29,6 +29,7 @@ import jax
 import jax.numpy as jnp
 
 from hilbertune import gates
+from hilbertune.gates import EXACT  # full float32 products on every backend (see gates)
 from hilbertune.errors import InvalidInputError, ResourceLimitError
 
 ONE_QUBIT_GATES = ("rx", "ry", "rz", "h", "x", "unitary")
@@ -362,7 +363,7 @@ def _local_matrix(blueprint, stage, angles, dtype, inverse=False):
     total = None
     for i in stage.steps:
         m = _step_matrix(blueprint.steps[i], angles[:, i], dtype)
-        total = m if total is None else jnp.matmul(m, total)
+        total = m if total is None else jnp.matmul(m, total, precision=EXACT)
     if total.ndim == 2:
         total = jnp.broadcast_to(total, (batch, 2, 2))
     if inverse:
@@ -423,7 +424,7 @@ def _product_prefix(blueprint, program, angles, dtype):
     head, tail = kron(range(half)), kron(range(half, n))
     head = jnp.stack([head, jnp.zeros_like(head)], axis=-1)  # [batch, 2**half, 2]
     tail = jnp.stack([tail, jnp.zeros_like(tail)], axis=1)  # [batch, 2, 2**(n - half)]
-    return jnp.matmul(head, tail).reshape(batch, -1)
+    return jnp.matmul(head, tail, precision=EXACT).reshape(batch, -1)
 
 
 def _amplitude_states(blueprint, X, dtype):
@@ -580,7 +581,8 @@ def _factors_jit(blueprint, params, X, dtype):
         for stage in program.stages:
             (q,) = stage.qubits
             columns = columns.at[:, q].set(jnp.einsum(
-                "bac,bc->ba", _local_matrix(blueprint, stage, angles, dtype), columns[:, q]))
+                "bac,bc->ba", _local_matrix(blueprint, stage, angles, dtype), columns[:, q],
+                precision=EXACT))
         return columns
     groups: dict = {}
     for stage in program.stages:
@@ -594,7 +596,7 @@ def _factors_jit(blueprint, params, X, dtype):
             index = np.array([stage.steps[position] for stage in stages])
             step = blueprint.steps[int(index[0])]
             m = _step_matrix(step, angles[:, index], dtype)  # [batch, G, 2, 2] or [2, 2]
-            total = m if total is None else jnp.matmul(m, total)
+            total = m if total is None else jnp.matmul(m, total, precision=EXACT)
         total = jnp.broadcast_to(total, (batch, len(stages), 2, 2))
         targets = np.array([next(iter(stage.qubits)) for stage in stages])
         columns = columns.at[:, targets].set(total[..., :, 0])  # each gate applied to |0>

@@ -28,6 +28,20 @@ def _one_of(*names):
     return (f"one of {', '.join(map(repr, names))}", lambda v: v in names)
 
 
+def _device_found(value) -> bool:
+    # 'gpu' is refused here, at the boundary, when JAX sees no GPU (with its own message)
+    if value not in ("auto", "cpu", "gpu"):
+        return False
+    if value == "gpu":
+        from hilbertune.kernels import gpu_devices
+
+        if not gpu_devices():
+            raise InvalidInputError("config key 'compute.device' is 'gpu' but JAX found no "
+                                    "GPU; install jax with CUDA support or set "
+                                    "compute.device = 'auto'")
+    return True
+
+
 SCHEMA = {
     # scikit-learn and numpy's legacy generators take seeds below 2**32
     "seed": (0, int, (f"non-negative and at most {2**32 - 1}", lambda v: 0 <= v <= 2**32 - 1),
@@ -139,6 +153,9 @@ SCHEMA = {
         "compile_cache": ("auto", str, None, "folder of JAX's persistent compilation cache, "
                           "reused by later runs and sweep trials ('auto' = the user's cache "
                           "folder, '' = off)"),
+        "device": ("auto", str, ("one of 'auto', 'cpu', 'gpu'", _device_found),
+                   "where states and Grams are computed: 'auto' (a GPU when JAX has one, "
+                   "else the CPU with BLAS), 'cpu', or 'gpu' (refused when none is found)"),
     },
 }
 

@@ -21,6 +21,13 @@ PAULI_X = np.array([[0.0, 1.0], [1.0, 0.0]])
 PAULI_Y = np.array([[0.0, -1.0j], [1.0j, 0.0]])
 PAULI_Z = np.array([[1.0, 0.0], [0.0, -1.0]])
 
+# Every matrix product that forms kernel values, amplitudes or angles runs at full float32
+# precision on every backend. XLA's default float32 product on a GPU rounds its operands to
+# TF32 (10-bit mantissa): Gram entries then differed from a float64 reference by up to 5e-4
+# on an H200 (issue 17), more than the 2**-n off-diagonal values of concentration studies.
+# On the CPU this changes nothing (XLA CPU multiplies float32 in full precision anyway).
+EXACT = jax.lax.Precision.HIGHEST
+
 
 def rotation_matrices(axis: str, angles, dtype=jnp.complex64):
     """Batched rotation matrices.
@@ -169,7 +176,9 @@ def apply_phases(states, angles, signs, fixed_diagonal=None):
       signs: +-1 array of shape [K, 2**n] (see ``parity_signs``).
       fixed_diagonal: optional real array of shape [2**n].
     """
-    phase = -0.5 * (angles @ signs)
+    # full float32 product (EXACT): the phases are angles, and TF32 would round them to
+    # about 3 decimal digits
+    phase = -0.5 * jnp.matmul(angles, signs, precision=EXACT)
     diagonal = jnp.exp(1j * phase).astype(states.dtype)
     if fixed_diagonal is not None:
         diagonal = diagonal * fixed_diagonal.astype(states.dtype)

@@ -5,10 +5,16 @@ complex matrix product ``|S_a S_b^H|**2`` per block of rows, never a circuit per
 Encodings without entangling gates use the closed form (a product of per-qubit overlaps),
 so hundreds of qubits work. Everything here is pure JAX except ``FrozenKernel`` (a
 callable for scikit-learn) and the memory-budget helpers.
+
+Two engine paths give the same numbers (within float32 rounding): on a CPU the host path
+hands concrete states to BLAS (``herk``, ``gemm``) and assembles product-kernel tiles in
+numpy; on a GPU the device path keeps states, Gram matrices and product kernels on the
+device as pure XLA (no callbacks, no host copies of states). ``device_path()`` decides.
 """
 
 from __future__ import annotations
 
+import contextlib
 import functools
 import os
 import re
@@ -18,10 +24,136 @@ import jax
 import jax.numpy as jnp
 
 from hilbertune import gates
+from hilbertune.gates import EXACT  # full float32 products on every backend (see gates)
 from hilbertune.circuits import (Blueprint, apply_circuit, check_dtype, encode_states,
                                  is_product, product_factors, require_state_memory,
                                  validate_features)
 from hilbertune.errors import InvalidInputError, ResourceLimitError
+
+# --------------------------------------------------------------------------- where products run
+
+ENGINE_PATHS = ("auto", "host", "device")
+COMPUTE_DEVICES = ("auto", "cpu", "gpu")
+# The one process-wide setting of the engine (set by ``select_device`` from
+# ``compute.device``, or forced by tests and benchmarks through ``engine_path``).
+_ENGINE = {"path": "auto"}
+
+
+def compute_platform() -> str:
+    """Platform that JAX computations run on: "cpu", "gpu", "tpu", ... (the default
+    device when one is pinned, else JAX's default backend)."""
+    pinned = jax.config.jax_default_device
+    if pinned is None:
+        return jax.default_backend()
+    return pinned if isinstance(pinned, str) else pinned.platform
+
+
+def device_path() -> bool:
+    """True when states, Grams and training products stay on the device as pure XLA.
+
+    "auto" (the default) takes the device path on any accelerator and the host (BLAS)
+    path on a CPU; ``set_engine_path("device")`` forces the device path on a CPU, so tests
+    cover the GPU code without a GPU.
+    """
+    path = _ENGINE["path"]
+    if path == "auto":
+        return compute_platform() != "cpu"
+    return path == "device"
+
+
+def set_engine_path(path: str) -> None:
+    """Choose the engine path: "auto", "host" (BLAS on concrete states) or "device".
+
+    The training Gram reads the path when it is traced, so a change of the effective path
+    clears JAX's compilation caches (compiled training steps are traced again with the
+    new path; switch once, not per call).
+    """
+    if path not in ENGINE_PATHS:
+        raise InvalidInputError(f"engine path must be one of {', '.join(ENGINE_PATHS)}, "
+                                f"got {path!r}")
+    before = device_path()
+    _ENGINE["path"] = path
+    if device_path() != before:
+        jax.clear_caches()
+
+
+@contextlib.contextmanager
+def engine_path(path: str):
+    """``with engine_path("device"): ...`` runs the block on that path, then restores."""
+    before = _ENGINE["path"]
+    set_engine_path(path)
+    try:
+        yield
+    finally:
+        set_engine_path(before)
+
+
+def gpu_devices() -> list:
+    """JAX's GPU devices; empty when this jaxlib has no GPU backend or finds no GPU."""
+    try:
+        return list(jax.devices("gpu"))
+    except (RuntimeError, ValueError):
+        return []
+
+
+def select_device(choice: str) -> None:
+    """Apply ``compute.device``: "auto" (a GPU when JAX has one), "cpu" or "gpu".
+
+    "cpu" pins JAX to the CPU and the host (BLAS) path even where a GPU exists; "gpu" pins
+    the first GPU and the device path, and refuses when there is none.
+    """
+    if choice not in COMPUTE_DEVICES:
+        raise InvalidInputError(f"compute.device must be one of "
+                                f"{', '.join(map(repr, COMPUTE_DEVICES))}, got {choice!r}")
+    if choice == "gpu":
+        found = gpu_devices()
+        if not found:
+            raise InvalidInputError(
+                f"compute.device = 'gpu' but JAX found no GPU (backend: "
+                f"{jax.default_backend()}); install jax with CUDA support or set "
+                "compute.device = 'auto'")
+        jax.config.update("jax_default_device", found[0])
+        set_engine_path("device")
+    elif choice == "cpu":
+        jax.config.update("jax_default_device", jax.devices("cpu")[0])
+        set_engine_path("host")
+    else:
+        jax.config.update("jax_default_device", None)
+        set_engine_path("auto")
+
+
+def _default_device():
+    pinned = jax.config.jax_default_device
+    if pinned is not None and not isinstance(pinned, str):
+        return pinned
+    return jax.devices(pinned)[0] if isinstance(pinned, str) else jax.devices()[0]
+
+
+def compute_device() -> str:
+    """The device computations run on and the engine path, in words (for run records),
+    e.g. ``"cpu: cpu (host BLAS path)"`` or ``"gpu: NVIDIA H200 (device path)"``."""
+    device = _default_device()
+    path = "device path" if device_path() else "host BLAS path"
+    return f"{device.platform}: {getattr(device, 'device_kind', '?')} ({path})"
+
+
+def device_memory_available():
+    """Free bytes of the default accelerator's memory, or None (a CPU, or no statistics).
+
+    From ``Device.memory_stats()``: ``bytes_limit - bytes_in_use``.
+    """
+    if compute_platform() == "cpu":
+        return None
+    try:
+        stats = _default_device().memory_stats()
+    except Exception:  # a backend without statistics raises; the budget then stands alone
+        return None
+    if not stats or "bytes_limit" not in stats:
+        return None
+    return int(stats["bytes_limit"]) - int(stats.get("bytes_in_use", 0))
+
+
+# --------------------------------------------------------------------------- memory
 
 _UNITS = {"": 1, "b": 1, "kb": 10**3, "mb": 10**6, "gb": 10**9, "kib": 2**10,
           "mib": 2**20, "gib": 2**30}
@@ -31,8 +163,14 @@ def resolve_memory_budget(budget=None) -> int:
     """Memory budget in bytes from an int, a string such as ``"2GiB"``, or None.
 
     None means half the physical memory, at most 8 GiB (common practice: leave room for
-    the rest of the process and the copies XLA makes).
+    the rest of the process and the copies XLA makes). On an accelerator whose memory
+    statistics JAX reports, the budget refers to device memory: None means half the free
+    device memory, and a larger budget than the free device memory is lowered to it, so
+    the guards refuse work before XLA fails to allocate.
     """
+    free = device_memory_available()
+    if budget is None and free is not None:
+        return max(1, free // 2)
     if budget is None:
         try:
             physical = os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES")
@@ -53,15 +191,37 @@ def resolve_memory_budget(budget=None) -> int:
     if not whole >= 1:
         raise InvalidInputError(f"memory budget must be a finite number of bytes >= 1, got "
                                 f"{budget!r}; write e.g. '2GiB'")
-    return whole
+    return whole if free is None else max(1, min(whole, free))
 
 
 # --------------------------------------------------------------------------- fidelity
 
 @jax.jit
 def _gram_block(states_a, states_b):
-    overlap = jnp.matmul(states_a, jnp.conj(states_b).T)
+    overlap = jnp.matmul(states_a, jnp.conj(states_b).T, precision=EXACT)
     return jnp.real(overlap) ** 2 + jnp.imag(overlap) ** 2
+
+
+@functools.partial(jax.jit, static_argnames=("block_rows",))
+def _device_gram(states_a, states_b, block_rows):
+    # Row blocks of one product each (lax.map's batches: the last one may be short), so
+    # the complex temporary stays [block_rows, N_b]; nothing leaves the device.
+    conj_b = jnp.conj(states_b).T
+
+    def rows(block):
+        overlap = jnp.matmul(block, conj_b, precision=EXACT)
+        return jnp.real(overlap) ** 2 + jnp.imag(overlap) ** 2
+
+    if block_rows >= states_a.shape[0]:
+        return rows(states_a)
+    return jax.lax.map(lambda row: rows(row[None])[0], states_a, batch_size=block_rows)
+
+
+@jax.jit
+def _symmetrized(gram):
+    # exactly symmetric (addition commutes) with the unit diagonal of normalized states
+    gram = 0.5 * (gram + gram.T)
+    return gram.at[jnp.diag_indices(gram.shape[0])].set(1.0)
 
 
 def _abs2(overlap: np.ndarray) -> np.ndarray:
@@ -112,9 +272,10 @@ def upper_dtype(states) -> np.dtype:
 def fidelity_gram(states_a, states_b=None, *, block_rows: int | None = None):
     """Fidelity kernel ``K_ij = |<a_i|b_j>|^2`` from states.
 
-    Concrete arrays go through BLAS (``herk`` for the symmetric train Gram, ``gemm`` per row
-    block otherwise) and return numpy; traced arrays (inside ``jax.grad``) use one JAX
-    matrix product.
+    On the host path concrete arrays go through BLAS (``herk`` for the symmetric train
+    Gram, ``gemm`` per row block otherwise) and return numpy; on the device path
+    (``device_path()``) they stay on the device (XLA products per row block, a jax array);
+    traced arrays (inside ``jax.grad``) use one JAX matrix product.
 
     Args:
       states_a: complex array of shape [N_a, 2**n].
@@ -126,16 +287,19 @@ def fidelity_gram(states_a, states_b=None, *, block_rows: int | None = None):
       diagonal.
     """
     traced = isinstance(states_a, jax.core.Tracer) or isinstance(states_b, jax.core.Tracer)
-    if not traced:
+    symmetric = states_b is None
+    if not traced and not device_path():
         a = np.asarray(states_a)
         b = None if states_b is None else np.asarray(states_b)
         return _numpy_gram(a, b, block_rows)
-    symmetric = states_b is None
-    gram = _gram_block(states_a, states_a if symmetric else states_b)
-    if symmetric:
-        gram = 0.5 * (gram + gram.T)
-        gram = gram.at[jnp.diag_indices(gram.shape[0])].set(1.0)
-    return gram
+    if traced:
+        gram = _gram_block(states_a, states_a if symmetric else states_b)
+    else:
+        states_a = jnp.asarray(states_a)
+        states_b = states_a if symmetric else jnp.asarray(states_b)
+        rows = states_a.shape[0] if block_rows is None else int(block_rows)
+        gram = _device_gram(states_a, states_b, rows)
+    return _symmetrized(gram) if symmetric else gram
 
 
 @jax.jit
@@ -153,7 +317,7 @@ def _product_block(bloch_a, bloch_b):
     # Bloch-sphere identity tr(rho sigma) = (1 + r.s)/2); the kernel multiplies over qubits.
     # Differentiable form, used under jax.grad; concrete inputs take the tiled path below.
     def one_qubit(acc, q):
-        dots = bloch_a[:, q, :] @ bloch_b[:, q, :].T
+        dots = jnp.matmul(bloch_a[:, q, :], bloch_b[:, q, :].T, precision=EXACT)
         return acc * (0.5 + 0.5 * dots), None
 
     init = jnp.ones((bloch_a.shape[0], bloch_b.shape[0]), bloch_a.dtype)
@@ -215,12 +379,31 @@ def _tile_layout(bloch, tile, n_padded, keep, halve):
     return out * 0.5 if halve else out
 
 
+@functools.partial(jax.jit, static_argnames=("keep", "per_pass"))
+def _product_device(bloch_a, bloch_b, keep, per_pass):
+    # The device path of the tiled product: the whole [N_a, N_b] matrix is one tile (an
+    # accelerator has the memory and the threads for it), laid out by XLA, not numpy.
+    def layout(bloch, halve):
+        comps = jnp.moveaxis(bloch[..., list(keep)], -1, 0).transpose(0, 2, 1)  # [k, n, N]
+        k, n, n_samples = comps.shape
+        n_padded = -(-n // per_pass) * per_pass
+        pad = jnp.zeros((k, n_padded - n, n_samples), comps.dtype).at[0].set(1.0)
+        out = jnp.concatenate([comps, pad], axis=1)
+        return out * 0.5 if halve else out
+
+    rows, cols = layout(bloch_a, False), layout(bloch_b, True)
+    pairs = jnp.zeros((1, 2), jnp.int32)
+    return _product_tiles(rows, cols, pairs, rows.shape[2], cols.shape[2], per_pass)[0]
+
+
 def product_gram(factors_a, factors_b=None, *, block_rows: int | None = None):
     """Closed-form fidelity kernel of product states: ``prod_q |<a_q|b_q>|^2``.
 
     Concrete inputs run as square tiles (only the upper triangle for the symmetric Gram),
-    each tile a fused product over qubits that never leaves cache; traced inputs (inside
-    ``jax.grad``) use a differentiable scan over qubits.
+    each tile a fused product over qubits that never leaves cache, assembled in numpy; on
+    the device path (``device_path()``) the same fused product runs over the whole matrix
+    on the device and returns a jax array. Traced inputs (inside ``jax.grad``) use a
+    differentiable scan over qubits.
 
     Args:
       factors_a: complex array of shape [N_a, n, 2] (see ``product_factors``).
@@ -228,8 +411,8 @@ def product_gram(factors_a, factors_b=None, *, block_rows: int | None = None):
       block_rows: ignored (kept for call compatibility); tiles are sized internally.
 
     Returns:
-      real array of shape [N_a, N_b] (numpy for concrete inputs); the symmetric Gram is
-      exactly symmetric with unit diagonal.
+      real array of shape [N_a, N_b] (numpy for concrete inputs on the host path); the
+      symmetric Gram is exactly symmetric with unit diagonal.
     """
     del block_rows
     symmetric = factors_b is None
@@ -237,10 +420,16 @@ def product_gram(factors_a, factors_b=None, *, block_rows: int | None = None):
     bloch_b = bloch_a if symmetric else bloch_vectors(factors_b)
     if isinstance(bloch_a, jax.core.Tracer) or isinstance(bloch_b, jax.core.Tracer):
         gram = _product_block(bloch_a, bloch_b)
-        if symmetric:
-            gram = 0.5 * (gram + gram.T)
-            gram = gram.at[jnp.diag_indices(gram.shape[0])].set(1.0)
-        return gram
+        return _symmetrized(gram) if symmetric else gram
+    if device_path():
+        # which Bloch components vanish everywhere: three booleans come to the host (the
+        # layout's shape depends on them), the vectors stay on the device
+        used = np.asarray(jnp.any(bloch_a != 0, axis=(0, 1)) | jnp.any(bloch_b != 0,
+                                                                       axis=(0, 1)))
+        keep = tuple(c for c in range(3) if used[c]) or (2,)
+        per_pass = min(_QUBITS_PER_PASS, bloch_a.shape[1])
+        gram = _product_device(bloch_a, bloch_b, keep, per_pass)
+        return _symmetrized(gram) if symmetric else gram
     bloch_a, bloch_b = np.asarray(bloch_a), np.asarray(bloch_b)
     # drop Bloch components that vanish everywhere (RY-only encodings have no Y part)
     keep = [c for c in range(3) if np.any(bloch_a[..., c]) or np.any(bloch_b[..., c])] or [2]
@@ -353,7 +542,7 @@ def pauli_expectations(states, n_qubits: int):
     out = []
     for q in range(n_qubits):
         view = states.reshape(batch, 2**q, 2, 2 ** (n_qubits - q - 1))
-        rho = jnp.einsum("biaj,bicj->bac", view, jnp.conj(view))
+        rho = jnp.einsum("biaj,bicj->bac", view, jnp.conj(view), precision=EXACT)
         out.append(jnp.stack([2 * jnp.real(rho[:, 0, 1]), -2 * jnp.imag(rho[:, 0, 1]),
                               jnp.real(rho[:, 0, 0] - rho[:, 1, 1])], axis=-1))
     return jnp.stack(out, axis=1)
@@ -380,7 +569,8 @@ def projected_gram_from_expectations(exp_a, exp_b, gamma):
     """
     a = exp_a.reshape(exp_a.shape[0], -1)
     b = exp_b.reshape(exp_b.shape[0], -1)
-    sq = (jnp.sum(a * a, 1)[:, None] + jnp.sum(b * b, 1)[None, :] - 2 * a @ b.T)
+    sq = (jnp.sum(a * a, 1)[:, None] + jnp.sum(b * b, 1)[None, :]
+          - 2 * jnp.matmul(a, b.T, precision=EXACT))
     return jnp.exp(-gamma * 0.5 * jnp.maximum(sq, 0.0))
 
 

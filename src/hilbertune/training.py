@@ -36,8 +36,9 @@ from hilbertune import artifacts
 from hilbertune.circuits import (PARAM_NAMES, Blueprint, compile_blueprint, encode_states,
                                  initial_params, is_product, validate_features)
 from hilbertune.errors import ArtifactError, InvalidInputError, ResourceLimitError, TrainingError
-from hilbertune.kernels import (encoding_expectations, gram_for_training, herk_upper,
-                                projected_gram_from_expectations, resolve_memory_budget)
+from hilbertune.kernels import (EXACT, device_path, encoding_expectations, gram_for_training,
+                                herk_upper, projected_gram_from_expectations,
+                                resolve_memory_budget)
 from hilbertune import objectives
 
 OPTIMIZERS = ("adam", "sgd", "rmsprop", "adamw")
@@ -408,7 +409,7 @@ def _overlap_on_host(states):
 
 
 def _overlap_in_xla(states):
-    return states @ jnp.conj(states).T
+    return jnp.matmul(states, jnp.conj(states).T, precision=EXACT)
 
 
 def planar_matmul(weights, real, imag):
@@ -430,9 +431,10 @@ def planar_matmul(weights, real, imag):
       (real part, imaginary part), real arrays of shape [N, D].
     """
     w_real, w_imag = jnp.real(weights), jnp.imag(weights)
-    t1 = w_real @ real
-    t2 = w_imag @ imag
-    t3 = (w_real + w_imag) @ (real + imag)
+    # full float32 products (kernels.EXACT): TF32 on a GPU would round the gradient's inputs
+    t1 = jnp.matmul(w_real, real, precision=EXACT)
+    t2 = jnp.matmul(w_imag, imag, precision=EXACT)
+    t3 = jnp.matmul(w_real + w_imag, real + imag, precision=EXACT)
     return t1 - t2, t3 - t1 - t2
 
 
@@ -481,7 +483,9 @@ def symmetric_fidelity_gram(states):
     (``planar_matmul``). Large problems (N^2 * 2^n >= HOST_PRODUCT_WORK) compute the
     forward overlap on the host through ``jax.pure_callback`` with BLAS ``herk`` (half the
     work of a general product; XLA's CPU complex product was 1.85x slower than OpenBLAS
-    here, 2000 x 4096 states: 3.5 s vs 1.9 s, herk 1.0 s). Not differentiable twice.
+    here, 2000 x 4096 states: 3.5 s vs 1.9 s, herk 1.0 s). On the device path
+    (``kernels.device_path()``, e.g. on a GPU) the overlap always stays in XLA: no callback,
+    no host copy of the states. Not differentiable twice.
 
     Args:
       states: complex array of shape [N, 2**n].
@@ -491,7 +495,7 @@ def symmetric_fidelity_gram(states):
     """
     n_rows, dim = states.shape
     large = n_rows * n_rows * dim >= HOST_PRODUCT_WORK
-    fidelity = _fidelity_on_host if large else _fidelity_in_xla
+    fidelity = _fidelity_on_host if large and not device_path() else _fidelity_in_xla
     return fidelity(states)
 
 
