@@ -381,6 +381,9 @@ def _execute_fit(config: dict, out_dir: Path, *, overwrite: bool, progress: bool
     config_text = cfg.dump_toml(config)
     out_dir = Path(out_dir)
     enable_compile_cache(config["compute"]["compile_cache"])
+    from hilbertune.kernels import select_device
+
+    select_device(config["compute"]["device"])  # before any array is made
 
     stage = time.perf_counter()
     dataset, n_features, blueprint, split = check_inputs(config)
