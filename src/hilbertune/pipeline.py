@@ -56,6 +56,21 @@ class FitSettings(NamedTuple):
     workers: int  # threads for repeated splits and inner folds
 
 
+class Evaluation(NamedTuple):
+    """The chosen and the untrained kernel of one split, frozen into SVMs."""
+
+    params: dict  # parameters of the chosen candidate
+    k_train: np.ndarray  # chosen kernel, float64 [N_train, N_train]
+    k_test: np.ndarray  # [N_test, N_train]
+    k0_train: np.ndarray  # untrained kernel, [N_train, N_train]
+    k0_test: np.ndarray
+    model: object  # fitted SVC of the chosen kernel
+    C: float  # its SVM constant
+    C_tuned: bool  # True when C was chosen by cross-validation
+    accuracies: dict  # test accuracy of "chosen" and "untrained"
+    train_accuracy: float  # of the chosen kernel's SVM on its training rows
+
+
 class PartResult(NamedTuple):
     """One split after learning, selection and evaluation (arrays are numpy float64)."""
 
@@ -175,7 +190,8 @@ def classical_baselines(split, settings: FitSettings, split_seed: int) -> dict:
             "linear_svm": diagnostics.linear_svm(*args, seed=split_seed, cv=settings.cv_folds)}
 
 
-def evaluate_part(blueprint, split, selection, settings: FitSettings, split_seed: int):
+def evaluate_part(blueprint, split, selection, settings: FitSettings,
+                  split_seed: int) -> Evaluation:
     """Frozen kernels of the chosen and untrained candidates, their SVMs and accuracies."""
     gram = gram_function(blueprint, settings)
     params = selection.params[selection.chosen]
@@ -190,8 +206,8 @@ def evaluate_part(blueprint, split, selection, settings: FitSettings, split_seed
     accuracies = {"chosen": float(np.mean(model.predict(k_test) == split.y_test)),
                   "untrained": float(np.mean(model0.predict(k0_test) == split.y_test))}
     train_accuracy = float(np.mean(model.predict(k_train) == split.y_train))
-    return params, (k_train, k_test, k0_train, k0_test), model, C, tuned, accuracies, \
-        train_accuracy
+    return Evaluation(params, k_train, k_test, k0_train, k0_test, model, C, tuned, accuracies,
+                      train_accuracy)
 
 
 def run_part(dataset, blueprint, settings: FitSettings, split_seed: int, *, split=None,
@@ -204,15 +220,15 @@ def run_part(dataset, blueprint, settings: FitSettings, split_seed: int, *, spli
                            checkpoint_dir=checkpoint_dir, progress=progress)
     seconds["learn_and_select"] = time.perf_counter() - started
     started = time.perf_counter()
-    params, grams, model, C, tuned, accuracies, train_accuracy = evaluate_part(
-        blueprint, split, selection, settings, split_seed)
+    ev = evaluate_part(blueprint, split, selection, settings, split_seed)
     seconds["evaluate"] = time.perf_counter() - started
     started = time.perf_counter()
     baselines = classical_baselines(split, settings, split_seed)
     seconds["classical_baselines"] = time.perf_counter() - started
-    accuracies.update({name: b.test_accuracy for name, b in baselines.items()})
-    return PartResult(split_seed, selection, params, *grams, C, tuned, model, accuracies,
-                      train_accuracy, baselines, seconds)
+    accuracies = {**ev.accuracies, **{name: b.test_accuracy for name, b in baselines.items()}}
+    return PartResult(split_seed, selection, ev.params, ev.k_train, ev.k_test, ev.k0_train,
+                      ev.k0_test, ev.C, ev.C_tuned, ev.model, accuracies, ev.train_accuracy,
+                      baselines, seconds)
 
 
 def all_parts(dataset, blueprint, settings: FitSettings, *, main_split=None,
