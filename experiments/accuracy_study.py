@@ -445,11 +445,28 @@ def recommendation_text(result: dict) -> str:
              f"Cheapest of these: {rec['label']} ({rec['description']}), "
              f"{rec['trainings']} trainings per selection "
              f"(ties broken toward fewer trainings, then the order of the list)."]
+    most = max(s["datasets_gaining_1pt"] for s in result["sets"])
+    closest = [s for s in result["sets"] if s["datasets_gaining_1pt"] == most]
+    lines.append(f"Target (2) needs {result['need_gain']} datasets at +1 pt or more; the most "
+                 f"any set reaches is {most} ("
+                 + ", ".join(f"{s['label']}: {s['trainings']} trainings, worst "
+                             f"{pt(s['worst_gap'])} pt, mean gain {pt(s['mean_gain'])} pt"
+                             for s in closest) + ").")
+    ceiling = [n for n, d in result["per_dataset"].items() if d["untrained"] > 0.99]
+    if ceiling:
+        lines.append(f"No 1 pt gain is possible where the untrained kernel is above 0.99: "
+                     f"{', '.join(ceiling)}.")
     return "\n".join(lines)
 
 
 def pt(value: float) -> str:
-    return f"{100 * value:+.1f}"
+    """Accuracy difference in percentage points, signed (no "-0.0" from rounding)."""
+    return f"{round(100 * value, 1) + 0.0:+.1f}"
+
+
+def points(value: float) -> str:
+    """As ``pt`` without the plus sign."""
+    return f"{round(100 * value, 1) + 0.0:.1f}"
 
 
 def write_markdown(raw: dict, result: dict, path: Path) -> None:
@@ -465,7 +482,7 @@ def write_markdown(raw: dict, result: dict, path: Path) -> None:
     L.append(f"Made by `experiments/accuracy_study.py`{' --quick' if raw['meta']['quick'] else ''}"
              f" from `{RAW_NAME}` (raw per-seed results; the analysis can be rerun with "
              f"`--analyse-only`). {len(entries)} (dataset, seed) runs, "
-             f"{total / 60:.1f} min of compute in all on a shared "
+             f"{total / 60:.1f} min in all (sum over runs) on a shared "
              f"{raw['meta']['cpus']}-core machine.\n")
     tr, sel = settings["training"], settings["selection"]
     L.append("## Setup\n")
@@ -525,12 +542,12 @@ def write_markdown(raw: dict, result: dict, path: Path) -> None:
         L.append(f"| {s['label']}: {s['description']} | {s['size']} | {s['rule']} | "
                  f"{s['trainings']} | {pt(s['worst_gap'])} ({s['worst_dataset']}) | "
                  f"{s['datasets_gaining_1pt']} | {pt(s['mean_gain'])} | "
-                 f"{100 * s['learned_share']:.0f}% | {100 * s['median_gap_to_rbf']:.1f} | "
+                 f"{100 * s['learned_share']:.0f}% | {points(s['median_gap_to_rbf'])} | "
                  f"{s['targets_met']} ({marks}) |")
     L.append("")
     L.append("'targets met' spells out (1)(2)(3) as Y / n.\n")
     L.append("## Recommended default candidate set\n")
-    L.append(recommendation_text(result) + "\n")
+    L.append(recommendation_text(result).replace("\n", "\n\n") + "\n")
     misses = [k for k, v in rec["targets"].items() if not v]
     if misses:
         text = {"no_loss": f"target (1) missed: on {rec['worst_dataset']} the selected "
@@ -539,7 +556,7 @@ def write_markdown(raw: dict, result: dict, path: Path) -> None:
                                    f"{result['n_datasets']} datasets gain 1 pt or more "
                                    f"(needed {result['need_gain']})",
                 "median_rbf_gap": f"target (3) missed: the median gap to the tuned RBF SVM "
-                                  f"is {100 * rec['median_gap_to_rbf']:.1f} pt"}
+                                  f"is {points(rec['median_gap_to_rbf'])} pt"}
         L.append("Misses of the recommended set, with the figures: "
                  + "; ".join(text[m] for m in misses) + ".\n")
     else:
@@ -586,6 +603,12 @@ def write_markdown(raw: dict, result: dict, path: Path) -> None:
     path.write_text("\n".join(L) + "\n")
 
 
+def _frame(column: int, rows: int):
+    from matplotlib.patches import Rectangle
+
+    return Rectangle((column - 0.5, -0.5), 1, rows, fill=False, lw=2, edgecolor="k")
+
+
 def plot(result: dict, path: Path) -> None:
     from matplotlib.backends.backend_agg import FigureCanvasAgg
     from matplotlib.figure import Figure
@@ -594,7 +617,7 @@ def plot(result: dict, path: Path) -> None:
     rec = sets[result["recommended"]]
     names = list(result["per_dataset"])
     labels = [f"{n}*" if result["per_dataset"][n]["invented"] else n for n in names]
-    fig = Figure(figsize=(13, 6.4))
+    fig = Figure(figsize=(14, 6.4))
     FigureCanvasAgg(fig)
     ax1, ax2 = fig.subplots(1, 2, gridspec_kw={"width_ratios": [3, 2]})
     ypos = np.arange(len(names))
@@ -613,21 +636,24 @@ def plot(result: dict, path: Path) -> None:
     ax1.set_title("per dataset (* = invented)")
     ax1.grid(alpha=0.3)
     ax1.legend(fontsize=8, loc="upper center", bbox_to_anchor=(0.5, -0.1), ncol=3)
-    width = 0.8 / len(result["sets"])
-    for i, s in enumerate(result["sets"]):
-        ax2.barh(ypos - 0.4 + (i + 0.5) * width,
-                 [100 * s["gap_to_untrained"][n] for n in names], height=width,
-                 color=f"C{i}", label=f"{s['label']} ({s['trainings']} trainings)")
-    ax2.axvline(0, color="k", lw=0.8)
-    ax2.axvline(-0.5, color="k", lw=0.8, ls=":")
-    ax2.axvline(1.0, color="k", lw=0.8, ls="--")
+    # gains of every set as a table of colours (bars of 11 sets would not be readable)
+    gains = np.array([[100 * st["gap_to_untrained"][n] for st in result["sets"]]
+                      for n in names])
+    limit = max(1.0, float(np.abs(gains).max()))
+    ax2.imshow(gains, cmap="RdBu", vmin=-limit, vmax=limit, aspect="auto")
+    for i in range(gains.shape[0]):
+        for j in range(gains.shape[1]):
+            ax2.text(j, i, f"{gains[i, j]:+.1f}", ha="center", va="center", fontsize=6.5,
+                     color="white" if abs(gains[i, j]) > 0.6 * limit else "black")
+    ax2.set_xticks(np.arange(len(result["sets"])))
+    ax2.set_xticklabels([f"{st['label']}\n{st['trainings']}" for st in result["sets"]],
+                        fontsize=7)
+    rec_index = [st["label"] for st in result["sets"]].index(rec["label"])
+    ax2.add_patch(_frame(rec_index, len(names)))
     ax2.set_yticks(ypos)
     ax2.set_yticklabels([])
-    ax2.invert_yaxis()
-    ax2.set_xlabel("selected - untrained (pt); dotted -0.5, dashed +1")
-    ax2.set_title("gain of each candidate set")
-    ax2.grid(alpha=0.3, axis="x")
-    ax2.legend(fontsize=7, loc="upper center", bbox_to_anchor=(0.5, -0.1), ncol=3)
+    ax2.set_xlabel("candidate set (label / trainings per selection); framed: recommended")
+    ax2.set_title("selected - untrained (pt), mean over seeds")
     fig.suptitle("Kernel chosen by nested inner CV vs untrained and tuned RBF "
                  "(exact simulation)", fontsize=10)
     fig.tight_layout()
@@ -642,7 +668,7 @@ def report(raw: dict, out: Path) -> dict:
     for s in result["sets"]:
         print(f"  {s['label']:4s} trainings {s['trainings']:3d}  worst {pt(s['worst_gap'])} pt "
               f"({s['worst_dataset']})  >=+1pt on {s['datasets_gaining_1pt']}/"
-              f"{result['n_datasets']}  median gap to RBF {100 * s['median_gap_to_rbf']:.1f}"
+              f"{result['n_datasets']}  median gap to RBF {points(s['median_gap_to_rbf'])}"
               f" pt  targets {s['targets_met']}/3")
     return result
 
