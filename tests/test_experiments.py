@@ -69,7 +69,7 @@ def test_scaling_and_accuracy_studies_run_and_write_their_results(tmp_path):
 def test_accuracy_study_runs_resumes_and_replays_the_selection(tmp_path):
     out = _run("accuracy_study.py", "--out", tmp_path)
     raw = json.loads((tmp_path / "accuracy_study.json").read_text())
-    assert len(raw["entries"]) == 2 and "Cheapest of these" in out
+    assert len(raw["entries"]) == 2 and "Rule (stated after" in out
     for entry in raw["entries"]:
         names = [c["name"] for c in entry["candidates"]]
         assert names[0] == "untrained" and entry["chosen"] in names

@@ -103,7 +103,7 @@ SCHEMA = {
         "checkpoint_every": (10, int, _NON_NEGATIVE, "steps between checkpoints (0 = none)"),
     },
     "selection": {
-        "candidates": (["untrained", "bandwidth", "full"], list, None,
+        "candidates": (["untrained", "rescaled", "full"], list, None,
                        "kernels compared by inner cross-validation on the training part: "
                        "'untrained' (always included), 'rescaled' (untrained with the "
                        "bandwidth times each of selection.bandwidth_factors), 'bandwidth' "
@@ -111,8 +111,10 @@ SCHEMA = {
                        "learned)"),
         "bandwidth_factors": ([0.25, 0.5, 2.0, 4.0], list, None,
                               "bandwidth factors of the 'rescaled' candidates"),
-        "objectives": ([], list, None, "objectives of the learned candidates (alignment, "
-                       "centered_alignment, ridge_loo, ridge_kfold); [] = training.objective"),
+        "objectives": (["centered_alignment", "ridge_loo"], list, None,
+                       "objectives of the learned candidates (alignment, centered_alignment, "
+                       "ridge_loo, ridge_kfold); [] = training.objective. The default set "
+                       "comes from experiments/accuracy_study.py"),
         "trajectory": ([0.25, 1.0], list, None, "fractions of training.steps at which full "
                        "training is a candidate (early stopping chosen by inner CV)"),
         "folds": (5, int, ("at least 2", lambda v: v >= 2),

@@ -41,17 +41,52 @@ SCOPE_TEXT = {"untrained": "the encoding at its initial parameters (nothing lear
 class SelectionSettings(NamedTuple):
     """What ``learn_and_select`` compares, and how (plain, hashable data)."""
 
-    scopes: tuple = ("untrained", "bandwidth", "full")  # which of SCOPES are candidates
-    #                                                    ("untrained" is always added)
-    objectives: tuple = ()  # objectives of the learned candidates; () = the training objective
+    # the defaults come from experiments/accuracy_study.py (set D of its results)
+    scopes: tuple = ("untrained", "rescaled", "full")  # which of SCOPES are candidates
+    #                                                   ("untrained" is always added)
+    objectives: tuple = ("centered_alignment", "ridge_loo")  # of the learned candidates;
+    #                                                          () = the training objective
     trajectory: tuple = (0.25, 1.0)  # fractions of training.steps at which full training is a
     #                                  candidate (early stopping on inner-CV accuracy)
     folds: int = 5  # stratified inner folds on the training part
+    repeats: int = 0  # times the K-fold split is drawn anew; 0 = enough for MIN_PREDICTIONS
     rule: str = "one_standard_error"  # or "best" (highest mean inner-CV accuracy)
     c_grid: tuple = (0.01, 0.1, 1.0, 10.0, 100.0, 1000.0)  # SVM C values tuned in each fold
     c_folds: int = 3  # folds of the C search inside each inner fold
     workers: int = 1  # inner folds trained at the same time (threads)
     bandwidth_factors: tuple = (0.25, 0.5, 2.0, 4.0)  # factors of the "rescaled" candidates
+
+
+#: With ``repeats = 0`` the inner K-fold split is repeated (new shuffles) until every
+#: candidate has been scored on at least this many held-out predictions, at most
+#: MAX_REPEATS times: on small training parts one K-fold split leaves the accuracy
+#: estimate at the mercy of the fold assignment (repeated cross-validation, common
+#: practice; e.g. Kohavi, IJCAI 1995, from memory). 200 predictions give a binomial
+#: standard error of at most 3.5 points.
+MIN_PREDICTIONS = 200
+MAX_REPEATS = 5
+
+
+def repeats_for(n_rows: int, settings: "SelectionSettings") -> int:
+    """Repeats of the inner K-fold split for a training part of ``n_rows`` rows."""
+    if settings.repeats:
+        return int(settings.repeats)
+    return int(min(MAX_REPEATS, max(1, math.ceil(MIN_PREDICTIONS / max(n_rows, 1)))))
+
+
+def corrected_standard_error(fold_accuracies, folds: int) -> float:
+    """Standard error of a cross-validated accuracy, corrected for overlapping training sets.
+
+    ``sd * sqrt(1 / J + n_test / n_train)`` over the J = repeats * folds held-out scores,
+    with ``n_test / n_train = 1 / (folds - 1)`` for K-fold splits (Nadeau & Bengio, Machine
+    Learning 52, 239 (2003), the variance behind the corrected resampled t-test). The naive
+    ``sd / sqrt(J)`` treats the folds as independent although their training sets share
+    most rows, so it understates the uncertainty, and the more so the more repeats.
+    """
+    values = np.asarray(fold_accuracies, dtype=np.float64)
+    if values.size < 2:
+        return 0.0
+    return float(values.std(ddof=1) * math.sqrt(1.0 / values.size + 1.0 / (folds - 1)))
 
 
 class Candidate(NamedTuple):
@@ -73,7 +108,7 @@ class CandidateScore(NamedTuple):
     fold_accuracies: tuple  # held-out accuracy of each inner fold
     mean: float  # mean over the folds
     sd: float  # standard deviation over the folds (ddof = 1)
-    se: float  # standard error of the mean, sd / sqrt(folds)
+    se: float  # standard error of the mean, corrected (``corrected_standard_error``)
 
 
 class Selection(NamedTuple):
@@ -87,6 +122,7 @@ class Selection(NamedTuple):
     runs: dict  # "scope/objective" -> TrainingResult on the whole training part
     folds: int  # inner folds used
     rule: str  # the rule used
+    repeats: int = 1  # times the K-fold split was drawn
 
     @property
     def chosen_score(self) -> CandidateScore:
@@ -137,6 +173,9 @@ def check_settings(settings: SelectionSettings, training_objective: str = "") ->
                                 f"{list(settings.trajectory)!r}")
     if settings.folds < 2:
         raise InvalidInputError(f"selection needs at least 2 inner folds, got {settings.folds}")
+    if settings.repeats < 0:
+        raise InvalidInputError(f"selection repeats must be 0 (automatic) or more, got "
+                                f"{settings.repeats}")
     if any(not (f > 0 and math.isfinite(f)) or f == 1 for f in settings.bandwidth_factors):
         raise InvalidInputError(f"bandwidth factors must be positive numbers other than 1, got "
                                 f"{list(settings.bandwidth_factors)!r}")
@@ -204,10 +243,11 @@ def one_standard_error_choice(scores, rule: str = "one_standard_error"):
     return best, chosen
 
 
-def _reason(scores, best: int, chosen: int, rule: str, folds: int) -> str:
+def _reason(scores, best: int, chosen: int, rule: str, folds: int, repeats: int = 1) -> str:
     b, c = scores[best], scores[chosen]
+    times = f" x {repeats} repeats" if repeats > 1 else ""
     text = (f"{b.candidate.name} has the highest mean inner-CV accuracy ({b.mean:.3f}, "
-            f"standard error {b.se:.3f} over {folds} folds of the training part)")
+            f"standard error {b.se:.3f} over {folds} folds{times} of the training part)")
     if rule == "best":
         return text + "; it is chosen (rule: highest mean)."
     if chosen == best:
@@ -284,7 +324,11 @@ def learn_and_select(blueprint: Blueprint, X, y, training, settings: SelectionSe
     check_settings(settings, training.objective)
     X = np.asarray(X, dtype=np.float64)
     y = np.asarray(y)
-    folds = inner_folds(y, settings.folds, seed)
+    n_repeats = repeats_for(len(y), settings)
+    # repeat r shuffles with seed + 7919 r (a prime step keeps the seeds of neighbouring
+    # runs, seed and seed + 1, from sharing their later repeats)
+    folds = [pair for r in range(n_repeats)
+             for pair in inner_folds(y, settings.folds, seed + 7919 * r)]
     candidates = candidates_for(blueprint, training, settings)
     start = starting_params(blueprint, X, y, training, seed=seed)
     fixed = {"untrained": start}
@@ -341,9 +385,10 @@ def learn_and_select(blueprint: Blueprint, X, y, training, settings: SelectionSe
         sd = float(row.std(ddof=1))
         scores.append(CandidateScore(c, trainable_count(blueprint, c, training.freeze),
                                      tuple(float(a) for a in row), float(row.mean()), sd,
-                                     sd / math.sqrt(row.size)))
+                                     corrected_standard_error(row, settings.folds)))
     best, chosen = one_standard_error_choice(scores, settings.rule)
     params, results = learn(np.arange(len(y)), final=True)
     return Selection(tuple(scores), candidates[best].name, candidates[chosen].name,
-                     _reason(scores, best, chosen, settings.rule, len(folds)), params,
-                     results, len(folds), settings.rule)
+                     _reason(scores, best, chosen, settings.rule, settings.folds,
+                             n_repeats), params, results, settings.folds, settings.rule,
+                     n_repeats)
