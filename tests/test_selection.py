@@ -248,7 +248,8 @@ def test_fit_summary_lists_candidates_choice_and_corrected_comparisons(tmp_path)
     assert names[0] == "untrained" and sel["chosen"] in names and sel["best"] in names
     assert summary["chosen_kernel"] == sel["chosen"]
     for c in sel["candidates"]:
-        assert len(c["cv_accuracy_folds"]) == sel["folds"] == 2
+        # 2 folds, drawn 5 times on 42 training rows (at least 200 held-out predictions)
+        assert len(c["cv_accuracy_folds"]) == sel["folds"] * sel["repeats"] == 2 * 5
         assert c["cv_accuracy_mean"] == pytest.approx(np.mean(c["cv_accuracy_folds"]))
     sig = summary["significance"]
     assert set(sig["comparisons"]) == {"learned_vs_untrained", "quantum_vs_rbf_svm",
@@ -290,6 +291,7 @@ def test_inner_folds_above_the_smallest_class_are_refused_by_the_library():
 def test_rescaled_candidates_multiply_the_untrained_bandwidth_and_come_before_training():
     blueprint = build_encoding("layered", 2, n_qubits=2, layers=1)
     chosen = SelectionSettings(scopes=("rescaled", "full"), bandwidth_factors=(4.0, 0.5),
+                               objectives=("centered_alignment",),
                                trajectory=(1.0,))
     candidates = candidates_for(blueprint, TrainingSettings(steps=8), chosen)
     assert [c.name for c in candidates] == ["untrained", "rescaled x0.5", "rescaled x4",

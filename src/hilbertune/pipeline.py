@@ -350,7 +350,8 @@ def selection_summary(selection) -> dict:
     chosen = selection.chosen_score
     return {"rule": ("one-standard-error rule (Hastie, Tibshirani & Friedman 2009, 7.10)"
                      if selection.rule == "one_standard_error" else "highest mean"),
-            "folds": selection.folds, "candidates": rows, "best": selection.best,
+            "folds": selection.folds, "repeats": selection.repeats, "candidates": rows,
+            "best": selection.best,
             "chosen": selection.chosen, "reason": selection.reason,
             "cv_accuracy": chosen.mean, "cv_accuracy_sd": chosen.sd,
             "note": "inner cross-validation on the training part only: each learned "

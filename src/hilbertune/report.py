@@ -526,7 +526,10 @@ def _selection_section(summary: dict) -> str:
                                   "choice"]) +
             f"<p class='verdict'>Chosen: {_esc(sel.get('chosen'))}. {_esc(sel.get('reason', ''))}"
             "</p>" + f"<p class='small'>Rule: {_esc(sel.get('rule'))}; "
-            f"{_esc(sel.get('folds'))} folds. {_esc(sel.get('note', ''))}</p>")
+            f"{_esc(sel.get('folds'))} folds, the split drawn {_esc(sel.get('repeats', 1))} "
+            "time(s) (small training parts get more draws); standard errors corrected for "
+            "overlapping training sets (Nadeau &amp; Bengio 2003). "
+            f"{_esc(sel.get('note', ''))}</p>")
 
 
 def _accuracy_section(summary: dict, head: dict) -> str:
