@@ -16,7 +16,8 @@ import pytest
 from hilbertune import cli
 
 TINY = ["--set", "data.samples=48", "--set", "training.steps=4", "--set",
-        "evaluation.repeats=2", "--set", "svm.cv_folds=2", "--set", "training.patience=0"]
+        "evaluation.repeats=2", "--set", "svm.cv_folds=2", "--set", "training.patience=0",
+        "--set", "selection.repeats=1"]
 
 
 def run(args, capsys):

@@ -30,7 +30,8 @@ from hilbertune.errors import (ArtifactError, HilbertuneError, InvalidInputError
                                NotFittedError, ResourceLimitError, TrainingError)
 
 TINY = ["--set", "training.steps=4", "--set", "evaluation.repeats=2", "--set",
-        "svm.cv_folds=2", "--set", "training.patience=0", "--set", "hardware.enabled=false"]
+        "svm.cv_folds=2", "--set", "training.patience=0", "--set", "hardware.enabled=false",
+        "--set", "selection.repeats=1"]
 
 
 # --------------------------------------------------------------------------- helpers
@@ -490,7 +491,8 @@ CRASH_STEPS = 300
 CRASH_ARGS = ["--qubits", "2", "--seed", "11", "--quiet",
               "--set", f"training.steps={CRASH_STEPS}", "--set", "training.checkpoint_every=10",
               "--set", "training.patience=0", "--set", "evaluation.repeats=2",
-              "--set", "svm.cv_folds=2", "--set", "hardware.enabled=false"]
+              "--set", "svm.cv_folds=2", "--set", "hardware.enabled=false",
+              "--set", "selection.repeats=1"]
 DETERMINISTIC = ("params.npz", "history.csv", "kernels.npz", "config.toml", "circuit.qasm")
 
 

@@ -76,7 +76,8 @@ def test_holm_adjustment_matches_a_hand_computation():
 def test_candidates_are_ordered_simplest_first_and_skip_what_learns_nothing_new():
     blueprint = build_encoding("layered", 2, n_qubits=2, layers=1)
     training = TrainingSettings(steps=40)
-    gradient_only = SelectionSettings(scopes=("untrained", "bandwidth", "full"), objectives=())
+    gradient_only = SelectionSettings(scopes=("untrained", "bandwidth", "full"),
+                                      objectives=("centered_alignment",))
     names = [c.name for c in candidates_for(blueprint, training, gradient_only)]
     assert names == ["untrained", "bandwidth/centered_alignment",
                      "full/centered_alignment@10", "full/centered_alignment@40"]

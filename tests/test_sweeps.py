@@ -311,7 +311,8 @@ def test_sweep_with_the_real_run_function_on_tiny_data(tmp_path):
     # trial_fn=None: each trial is a full runs.execute_fit run directory
     tiny = {"data": {"source": "moons", "samples": 40}, "encoding": {"qubits": 2},
             "training": {"steps": 3}, "evaluation": {"repeats": 2},
-            "hardware": {"enabled": False}, "svm": {"cv_folds": 2, "C": 1.0}}
+            "hardware": {"enabled": False}, "svm": {"cv_folds": 2, "C": 1.0},
+            "selection": {"repeats": 1}}
     out = tmp_path / "sweep"
     rows = run_sweep({"base": tiny, "grid": {"training.steps": [2, 3]}}, out)
     assert [r["status"] for r in rows] == ["ok", "ok"], [r["error"] for r in rows]

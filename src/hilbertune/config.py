@@ -111,14 +111,16 @@ SCHEMA = {
                        "learned)"),
         "bandwidth_factors": ([0.25, 0.5, 2.0, 4.0], list, None,
                               "bandwidth factors of the 'rescaled' candidates"),
-        "objectives": (["centered_alignment", "ridge_loo"], list, None,
+        "objectives": ([], list, None,
                        "objectives of the learned candidates (alignment, centered_alignment, "
-                       "ridge_loo, ridge_kfold); [] = training.objective. The default set "
-                       "comes from experiments/accuracy_study.py"),
+                       "ridge_loo, ridge_kfold); [] = training.objective and ridge_loo (the "
+                       "default set of experiments/accuracy_study.py)"),
         "trajectory": ([0.25, 1.0], list, None, "fractions of training.steps at which full "
                        "training is a candidate (early stopping chosen by inner CV)"),
         "folds": (5, int, ("at least 2", lambda v: v >= 2),
                   "stratified inner folds on the training part"),
+        "repeats": (0, int, _NON_NEGATIVE, "times the inner K-fold split is drawn (0 = "
+                    "enough for 200 held-out predictions per candidate, at most 5)"),
         "rule": ("one_standard_error", str, _one_of("one_standard_error", "best"),
                  "how a candidate is chosen: the simplest within one standard error of the "
                  "best (Hastie et al. 2009, 7.10), or the best mean"),

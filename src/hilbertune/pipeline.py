@@ -105,6 +105,7 @@ def settings_from_config(config: dict, n_features: int) -> FitSettings:
     selection = SelectionSettings(
         scopes=tuple(sel["candidates"]), objectives=tuple(sel["objectives"]),
         trajectory=tuple(sel["trajectory"]), folds=sel["folds"], rule=sel["rule"],
+        repeats=sel["repeats"],
         bandwidth_factors=tuple(float(f) for f in sel["bandwidth_factors"]),
         c_folds=min(3, config["svm"]["cv_folds"]), workers=1)
     return FitSettings(

@@ -44,8 +44,8 @@ class SelectionSettings(NamedTuple):
     # the defaults come from experiments/accuracy_study.py (set D of its results)
     scopes: tuple = ("untrained", "rescaled", "full")  # which of SCOPES are candidates
     #                                                   ("untrained" is always added)
-    objectives: tuple = ("centered_alignment", "ridge_loo")  # of the learned candidates;
-    #                                                          () = the training objective
+    objectives: tuple = ()  # of the learned candidates; () = the training objective and
+    #                         ridge_loo (with the default objective: set D of the study)
     trajectory: tuple = (0.25, 1.0)  # fractions of training.steps at which full training is a
     #                                  candidate (early stopping on inner-CV accuracy)
     folds: int = 5  # stratified inner folds on the training part
@@ -189,7 +189,8 @@ def candidates_for(blueprint: Blueprint, training, settings: SelectionSettings) 
     A scope is skipped when it would learn nothing new (every parameter of it frozen, or
     "full" learning the same parameters as "bandwidth").
     """
-    chosen_objectives = tuple(settings.objectives) or (training.objective,)
+    chosen_objectives = tuple(settings.objectives) or tuple(
+        dict.fromkeys((training.objective, "ridge_loo")))
     out = [Candidate("untrained", "untrained", "", 0)]
     if "rescaled" in settings.scopes and "log_bandwidth" not in (
             set(blueprint.frozen) | set(training.freeze)):
