@@ -656,7 +656,8 @@ def summary_lines(summary: dict) -> list:
     if sel:
         lines.append(f"chosen kernel: {sel['chosen']} (inner-CV accuracy "
                      f"{sel['cv_accuracy']:.3f} +- {sel['cv_accuracy_sd']:.3f} over "
-                     f"{sel['folds']} folds x {sel.get('repeats', 1)} of the training part); "
+                     f"{sel['folds']} folds of the training part, split drawn "
+                     f"{sel.get('repeats', 1)} time(s)); "
                      f"{sel['reason']}")
     lines.append(f"dataset: {summary['dataset']['source']}")
     return lines
