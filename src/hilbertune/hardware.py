@@ -798,6 +798,22 @@ def _analytic_shots(K_train, overlaps_train, estimator, fraction, depolarizing, 
     return high, spread
 
 
+def _check_budget_inputs(y_train, shots_grid, repeats, estimator: str = "inversion_test"):
+    """Shared boundary checks of the shot budgets; returns the shot grid as ints."""
+    if len(np.unique(y_train)) < 2:
+        raise InvalidInputError("y_train has a single class; an SVM needs at least two")
+    try:
+        grid = [_check_shots(s, estimator, name="shots_grid entry") for s in shots_grid]
+    except TypeError:
+        raise InvalidInputError("shots_grid must be a list of positive whole numbers") from None
+    if not grid or sorted(set(grid)) != grid:
+        raise InvalidInputError(f"shots_grid must be non-empty and strictly increasing, got "
+                                f"{list(shots_grid)!r}")
+    if isinstance(repeats, bool) or not isinstance(repeats, int) or repeats < 1:
+        raise InvalidInputError(f"repeats must be a positive integer, got {repeats!r}")
+    return grid
+
+
 def shot_budget(K_train, K_test, y_train, y_test, *, seed, shots_grid=(10, 100, 1000, 10000),
                 C: float = 1.0, tolerance: float = 0.02, repeats: int = 5,
                 estimator: str = "inversion_test", overlaps_train=None, overlaps_test=None,
@@ -844,17 +860,7 @@ def shot_budget(K_train, K_test, y_train, y_test, *, seed, shots_grid=(10, 100, 
         raise InvalidInputError(f"labels must be 1-D with one entry per row: y_train "
                                 f"{y_train.shape} for {n_train} rows, y_test {y_test.shape} "
                                 f"for {K_test.shape[0]} rows")
-    if len(np.unique(y_train)) < 2:
-        raise InvalidInputError("y_train has a single class; an SVM needs at least two")
-    try:
-        grid = [_check_shots(s, estimator, name="shots_grid entry") for s in shots_grid]
-    except TypeError:
-        raise InvalidInputError("shots_grid must be a list of positive whole numbers") from None
-    if not grid or sorted(set(grid)) != grid:
-        raise InvalidInputError(f"shots_grid must be non-empty and strictly increasing, got "
-                                f"{list(shots_grid)!r}")
-    if isinstance(repeats, bool) or not isinstance(repeats, int) or repeats < 1:
-        raise InvalidInputError(f"repeats must be a positive integer, got {repeats!r}")
+    grid = _check_budget_inputs(y_train, shots_grid, repeats, estimator)
     if not (isinstance(C, (int, float)) and C > 0):
         raise InvalidInputError(f"C must be a positive number, got {C!r}")
     if not (0 <= tolerance < 1):
@@ -1201,17 +1207,7 @@ def projected_shot_budget(E_train, E_test, y_train, y_test, *, gamma: float, see
     y_train, y_test = np.asarray(y_train), np.asarray(y_test)
     if y_train.shape != (E_train.shape[0],) or y_test.shape != (E_test.shape[0],):
         raise InvalidInputError("labels must be 1-D with one entry per sample")
-    if len(np.unique(y_train)) < 2:
-        raise InvalidInputError("y_train has a single class; an SVM needs at least two")
-    try:
-        grid = [_check_shots(s, name="shots_grid entry") for s in shots_grid]
-    except TypeError:
-        raise InvalidInputError("shots_grid must be a list of positive whole numbers") from None
-    if not grid or sorted(set(grid)) != grid:
-        raise InvalidInputError(f"shots_grid must be non-empty and strictly increasing, got "
-                                f"{list(shots_grid)!r}")
-    if isinstance(repeats, bool) or not isinstance(repeats, int) or repeats < 1:
-        raise InvalidInputError(f"repeats must be a positive integer, got {repeats!r}")
+    grid = _check_budget_inputs(y_train, shots_grid, repeats)
     shrink = _shrink_vector(shrink)
     K_train = projected_kernel_from_expectations(E_train, gamma=gamma)
     K_test = projected_kernel_from_expectations(E_test, E_train, gamma=gamma)
