@@ -1,10 +1,14 @@
 """A scikit-learn classifier that learns an encoding circuit and freezes it into an SVM.
 
 Data flow inside ``fit``: validate (scikit-learn rules) -> build the encoding for the number
-of features -> ``training.train_encoding`` -> fidelity Gram of the training data with the
-learned parameters -> C by stratified CV (``training.tune_svm_c``) unless given ->
-``SVC(kernel="precomputed")``. ``predict`` / ``decision_function`` compute the Gram between
-new rows and the training rows. Works with ``clone``, ``Pipeline`` and ``GridSearchCV``.
+of features -> learn and choose the encoding (``selection.learn_and_select``: the untrained
+encoding, rescaled bandwidths and trained encodings, compared by nested inner
+cross-validation; a learned one is kept only when it beats the untrained one by more than
+one standard error) or, with ``select=False``, one ``training.train_encoding`` -> fidelity
+Gram of the training data with the chosen parameters -> C by stratified CV
+(``training.tune_svm_c``) unless given -> ``SVC(kernel="precomputed")``. ``predict`` /
+``decision_function`` compute the Gram between new rows and the training rows. Works with
+``clone``, ``Pipeline`` and ``GridSearchCV``.
 """
 
 from __future__ import annotations
@@ -23,9 +27,11 @@ from sklearn.utils.validation import validate_data
 from hilbertune.circuits import encode_states
 from hilbertune.encodings import build_encoding
 from hilbertune.errors import InvalidInputError, NotFittedError
-from hilbertune.kernels import quantum_gram
+from hilbertune.kernels import device_path, quantum_gram
+from hilbertune.selection import SelectionSettings, learn_and_select
 from hilbertune.training import (TrainingSettings, padded_size, quick_compile,
-                                 quick_compile_options, train_encoding, tune_svm_c)
+                                 quick_compile_options, starting_params, train_encoding,
+                                 tune_svm_c)
 
 # families whose qubit count follows from the number of features
 _FIXED_WIDTH = ("angle", "iqp", "basis", "amplitude")
@@ -74,11 +80,25 @@ class EncodingClassifier(ClassifierMixin, BaseEstimator):
         small (15 full-batch steps, no validation split, so no early stopping): each new data
         size costs one compilation of the training step, which dominates short fits.
       C: SVM constant; None = chosen by stratified CV over ``c_grid`` with ``cv`` folds.
+      select: True (default) = learn several candidates and keep the one chosen by nested
+        inner cross-validation on the training rows (``hilbertune.selection``): the untrained
+        encoding, its bandwidth rescaled, and full training with ``objective`` and ridge LOO
+        at 1/4 of ``steps`` and at the end; a learned one is kept only when it beats the
+        simplest by more than one standard error, so learning does not make the kernel
+        worse than not learning. False = train once with ``objective`` and keep the result
+        (about 12 times faster, no such guard).
+      selection_options: dict of ``hilbertune.selection.SelectionSettings`` fields, e.g.
+        {"folds": 3, "repeats": 1, "rule": "best"}; None = the defaults. The inner folds are
+        lowered to the smallest class count when a class has fewer rows.
       random_state: int, numpy RandomState or None; drives the split, batches and CV folds.
 
     Learned attributes: ``classes_``, ``n_features_in_``, ``blueprint_``, ``params_``,
-    ``initial_params_``, ``history_``, ``stop_reason_``, ``C_``, ``svm_``, ``seed_`` and
-    ``X_fit_`` (the training rows, needed for the Gram of new rows against them).
+    ``initial_params_``, ``history_``, ``stop_reason_``, ``C_``, ``svm_``, ``seed_``,
+    ``chosen_`` (name of the kept candidate, e.g. "untrained" or "full/ridge_loo@15"),
+    ``selection_`` (the ``Selection`` with every candidate's inner-CV scores and the reason;
+    None with ``select=False``) and ``X_fit_`` (the training rows, needed for the Gram of
+    new rows against them). ``history_`` and ``stop_reason_`` describe the training run
+    that produced the kept candidate (an empty history when nothing was trained).
 
     Small problems (padded rows * 2**n_qubits <= 2**16) compute states with XLA's quick
     compilation options and the Gram with numpy; larger ones use ``quantum_gram`` (memory
@@ -88,7 +108,8 @@ class EncodingClassifier(ClassifierMixin, BaseEstimator):
     def __init__(self, *, family="layered", n_qubits=None, layers=2, encoding_options=None,
                  objective="centered_alignment", steps=15, learning_rate=0.05,
                  optimizer="adam", batch_size=0, validation_fraction=0.0, bandwidth=None,
-                 C=None, c_grid=(0.1, 1.0, 10.0, 100.0), cv=3, random_state=None):
+                 C=None, c_grid=(0.1, 1.0, 10.0, 100.0), cv=3, select=True,
+                 selection_options=None, random_state=None):
         self.family = family
         self.n_qubits = n_qubits
         self.layers = layers
@@ -103,6 +124,8 @@ class EncodingClassifier(ClassifierMixin, BaseEstimator):
         self.C = C
         self.c_grid = c_grid
         self.cv = cv
+        self.select = select
+        self.selection_options = selection_options
         self.random_state = random_state
 
     # ------------------------------------------------------------------ helpers
@@ -132,25 +155,70 @@ class EncodingClassifier(ClassifierMixin, BaseEstimator):
                                 validation_fraction=self.validation_fraction,
                                 bandwidth=self.bandwidth)
 
-    def _gram(self, X, X_train=None):
+    def _selection_settings(self, y) -> SelectionSettings:
+        options = dict(self.selection_options or {})
+        unknown = sorted(set(options) - set(SelectionSettings._fields))
+        if unknown:
+            raise InvalidInputError(f"unknown selection_options {unknown}; use some of "
+                                    f"{', '.join(SelectionSettings._fields)}")
+        if self.C is not None:
+            options.setdefault("c_grid", (float(self.C),))
+        options.setdefault("c_grid", tuple(float(c) for c in self.c_grid))
+        options.setdefault("c_folds", int(self.cv))
+        try:
+            settings = SelectionSettings(**options)
+            smallest = int(np.unique(y, return_counts=True)[1].min())
+            return settings._replace(folds=int(min(settings.folds, smallest)))
+        except (TypeError, ValueError) as exc:
+            raise InvalidInputError(f"selection_options: {' '.join(str(exc).split())}") \
+                from None
+
+    def _gram(self, X, X_train=None, params=None):
         """Gram of rows X against the training rows, float64 numpy [len(X), N_train].
 
         Both sides are padded to ``padded_size`` rows (copies of row 0, cut off afterwards) so
-        that batches of similar size share one compiled Gram function.
+        that batches of similar size share one compiled Gram function. ``params`` defaults to
+        the fitted ones.
         """
         X_train = self.X_fit_ if X_train is None else X_train
+        params = self.params_ if params is None else params
         X_a = _pad(X)
         X_b = X_a if X_train is X else _pad(X_train)
-        if quick_compile(max(X_a.shape[0], X_b.shape[0]), self.blueprint_.n_qubits):
+        if (quick_compile(max(X_a.shape[0], X_b.shape[0]), self.blueprint_.n_qubits)
+                and not device_path()):
             # fidelity kernel |<a|b>|^2 from the states (one complex product, as fidelity_gram)
-            states_a = np.asarray(_quick_states()(self.blueprint_, self.params_, X_a))
+            states_a = np.asarray(_quick_states()(self.blueprint_, params, X_a))
             states_b = states_a if X_b is X_a else np.asarray(
-                _quick_states()(self.blueprint_, self.params_, X_b))
+                _quick_states()(self.blueprint_, params, X_b))
             overlap = states_a @ states_b.conj().T
             gram = overlap.real.astype(np.float64) ** 2 + overlap.imag.astype(np.float64) ** 2
-        else:  # memory budget checked, blocked
-            gram = quantum_gram(self.blueprint_, self.params_, X_a, X_b)
+        else:  # memory budget checked, blocked; on an accelerator kept on the device
+            gram = quantum_gram(self.blueprint_, params, X_a, X_b)
         return np.asarray(gram, dtype=np.float64)[:X.shape[0], :X_train.shape[0]]
+
+    def _learn(self, X, y, seed: int):
+        """(params, initial params, history, stop reason, chosen name, Selection or None)."""
+        settings = self._settings()
+        if not self.select:
+            result = train_encoding(self.blueprint_, X, y, settings, seed=seed)
+            return (result.params, result.initial_params, result.history,
+                    result.stop_reason, f"full/{self.objective}", None)
+        options = self._selection_settings(y)
+        start = starting_params(self.blueprint_, X, y, settings, seed=seed)
+        if options.folds < 2:  # a class with one row: no inner CV possible; keep the simplest
+            return start, start, [], "not trained: a class has a single row, too few to " \
+                "judge a learned encoding", "untrained", None
+
+        def gram(params, X_a, X_b=None):
+            return self._gram(X_a, X_a if X_b is None else X_b, params=params)
+
+        selection = learn_and_select(self.blueprint_, X, y, settings, options, seed=seed,
+                                     gram=gram)
+        run = selection.run_of(selection.chosen)
+        history, reason = ((run.history, run.stop_reason) if run is not None else
+                           ([], f"not trained: {selection.chosen} chosen by inner CV"))
+        return (selection.params[selection.chosen], start, history, reason,
+                selection.chosen, selection)
 
     def _check_fitted(self):
         if not hasattr(self, "svm_"):
@@ -173,16 +241,17 @@ class EncodingClassifier(ClassifierMixin, BaseEstimator):
         if self.classes_.shape[0] < 2:
             raise InvalidInputError(f"y contains only one class ({self.classes_[0]!r}); a "
                                     "classifier needs samples of at least 2 classes")
+        if self.C is not None and not (isinstance(self.C, (int, float, np.number))
+                                       and self.C > 0):
+            raise InvalidInputError(f"C must be a positive number or None (tuned by CV), "
+                                    f"got {self.C!r}")
         random = check_random_state(self.random_state)
         seed = int(self.random_state) if isinstance(self.random_state, (int, np.integer)) \
             else int(random.randint(0, 2**31 - 1))
         self.blueprint_ = self._blueprint(X.shape[1])
-        result = train_encoding(self.blueprint_, X, y, self._settings(), seed=seed)
+        (self.params_, self.initial_params_, self.history_, self.stop_reason_, self.chosen_,
+         self.selection_) = self._learn(X, y, seed)
         self.seed_ = seed
-        self.params_ = result.params
-        self.initial_params_ = result.initial_params
-        self.history_ = result.history
-        self.stop_reason_ = result.stop_reason
         self.X_fit_ = X
         gram = self._gram(X, X)
         gram = 0.5 * (gram + gram.T)
@@ -190,9 +259,6 @@ class EncodingClassifier(ClassifierMixin, BaseEstimator):
             choice = tune_svm_c(gram, y, self.c_grid, self.cv, seed)
             self.C_ = choice.C
         else:
-            if not (isinstance(self.C, (int, float, np.number)) and self.C > 0):
-                raise InvalidInputError(f"C must be a positive number or None (tuned by CV), "
-                                        f"got {self.C!r}")
             self.C_ = float(self.C)
         self.svm_ = SVC(kernel="precomputed", C=self.C_).fit(gram, y)
         return self

@@ -30,7 +30,7 @@ from hilbertune.circuits import PARAM_NAMES, Blueprint
 from hilbertune.errors import InvalidInputError
 
 SCOPES = ("untrained", "rescaled", "bandwidth", "full")
-RULES = ("one_standard_error", "best")
+RULES = ("one_standard_error", "best_or_untrained", "best")
 SCOPE_TEXT = {"untrained": "the encoding at its initial parameters (nothing learned)",
               "rescaled": "the untrained encoding with its bandwidth multiplied by a factor "
                           "(a grid searched by inner CV, as the RBF SVM's gamma is)",
@@ -233,12 +233,18 @@ def one_standard_error_choice(scores, rule: str = "one_standard_error"):
     one-standard-error rule the chosen one is the simplest candidate whose mean is at least
     ``mean_best - se_best`` (Hastie, Tibshirani & Friedman 2009, section 7.10: "choose the
     most parsimonious model whose error is no more than one standard error above the error
-    of the best model"); with ``rule="best"`` it is ``best``.
+    of the best model"); with ``rule="best"`` it is ``best``. ``rule="best_or_untrained"``
+    is the same rule with two levels of complexity only, nothing learned (``scores[0]``,
+    the untrained encoding) and learned: ``best`` unless the untrained encoding's mean is
+    within one standard error of it.
     """
     means = [s.mean for s in scores]
     best = int(np.argmax(means))  # argmax takes the first maximum: the simplest of ties
     if rule == "best":
         return best, best
+    if rule == "best_or_untrained":
+        keep = scores[0].mean >= scores[best].mean - scores[best].se - 1e-12
+        return best, 0 if keep else best
     threshold = scores[best].mean - scores[best].se
     chosen = next(i for i, s in enumerate(scores) if s.mean >= threshold - 1e-12)
     return best, chosen
