@@ -46,9 +46,27 @@ def test_one_standard_error_choice_matches_a_hand_computation():
     assert one_standard_error_choice(tie) == (0, 0)
 
 
+def test_best_or_untrained_matches_a_hand_computation():
+    # The same rule (Hastie et al. 2009, 7.10) with two complexity levels: untrained, learned.
+    # By hand, with the scores above: best = c (0.86, se 0.03); the untrained a (0.80) is
+    # below 0.86 - 0.03 = 0.83, so c itself is chosen (b, simpler than c but learned, is
+    # not preferred: among learned candidates no order of simplicity is claimed).
+    scores = [score("a", 0.80, 0.02, "untrained", 0), score("b", 0.83, 0.01, "bandwidth"),
+              score("c", 0.86, 0.03), score("d", 0.85, 0.02, steps=60)]
+    assert one_standard_error_choice(scores, "best_or_untrained") == (2, 2)
+    # a reaches the threshold when the best's standard error is 0.06: keep the untrained
+    wide = scores[:2] + [score("c", 0.86, 0.06), scores[3]]
+    assert one_standard_error_choice(wide, "best_or_untrained") == (2, 0)
+    # the untrained encoding best: kept
+    assert one_standard_error_choice([score("a", 0.9, 0.01, "untrained", 0),
+                                      score("b", 0.8, 0.01)], "best_or_untrained") == (0, 0)
+
+
+@pytest.mark.parametrize("rule", ["one_standard_error", "best_or_untrained"])
 @settings(max_examples=200, deadline=None)
 @given(st.lists(st.lists(st.integers(0, 10), min_size=3, max_size=3), min_size=2, max_size=6))
-def test_the_choice_is_never_below_the_untrained_kernel_by_more_than_one_standard_error(folds):
+def test_the_choice_is_never_below_the_untrained_kernel_by_more_than_one_standard_error(
+        rule, folds):
     scores = []
     for i, correct in enumerate(folds):
         acc = np.asarray(correct, float) / 10
@@ -56,10 +74,14 @@ def test_the_choice_is_never_below_the_untrained_kernel_by_more_than_one_standar
         scores.append(CandidateScore(Candidate(f"c{i}", "untrained" if i == 0 else "full", "",
                                                i), i, tuple(acc), float(acc.mean()), sd,
                                      sd / np.sqrt(acc.size)))
-    best, chosen = one_standard_error_choice(scores)
+    best, chosen = one_standard_error_choice(scores, rule)
     assert scores[chosen].mean >= scores[0].mean - scores[best].se - 1e-12
     assert scores[chosen].mean >= scores[best].mean - scores[best].se - 1e-12
     assert chosen <= best  # never more complex than the best
+    if rule == "best_or_untrained":
+        assert chosen in (0, best)
+        if chosen != 0:  # learned only with evidence: more than one SE above the untrained
+            assert scores[best].mean - scores[0].mean > scores[best].se
 
 
 def test_holm_adjustment_matches_a_hand_computation():

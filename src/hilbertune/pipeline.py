@@ -337,6 +337,15 @@ def comparison_verdict(test: dict, alpha: float) -> str:
             f"Holm-adjusted p = {p:.3g}, alpha = {alpha}).")
 
 
+RULE_TEXT = {
+    "one_standard_error": "one-standard-error rule (Hastie, Tibshirani & Friedman 2009, 7.10)",
+    "best_or_untrained": "the best candidate unless the untrained encoding is within one "
+                         "standard error of it (the one-standard-error rule of Hastie, "
+                         "Tibshirani & Friedman 2009, 7.10, with two levels of complexity: "
+                         "nothing learned, learned)",
+    "best": "highest mean"}
+
+
 def selection_summary(selection) -> dict:
     """JSON-able account of the candidates, their inner-CV accuracy and the choice."""
     rows = []
@@ -349,8 +358,7 @@ def selection_summary(selection) -> dict:
                "cv_accuracy_folds": list(s.fold_accuracies)}
         rows.append(row)
     chosen = selection.chosen_score
-    return {"rule": ("one-standard-error rule (Hastie, Tibshirani & Friedman 2009, 7.10)"
-                     if selection.rule == "one_standard_error" else "highest mean"),
+    return {"rule": RULE_TEXT.get(selection.rule, selection.rule),
             "folds": selection.folds, "repeats": selection.repeats, "candidates": rows,
             "best": selection.best,
             "chosen": selection.chosen, "reason": selection.reason,
