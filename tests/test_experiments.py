@@ -96,3 +96,20 @@ def test_fit_benchmark_runs_and_reports_every_stage(tmp_path):
     for ratio in ("ratio_warm_to_cold", "ratio_workers2_to_workers1",
                   "ratio_fit_to_one_training"):
         assert math.isfinite(report[ratio]) and report[ratio] > 0
+
+
+def test_rule_check_runs_and_states_its_decision(tmp_path):
+    out = _run("rule_check.py", "--out", tmp_path)
+    raw = json.loads((tmp_path / "rule_check.json").read_text())
+    assert len(raw["entries"]) == 1 and "adopt best_or_untrained:" in out
+    table = (tmp_path / "rule_check.md").read_text()
+    assert "## Decision" in table and "says nothing about hardware" in table
+    # the replayed one-standard-error choice is the one learn_and_select recorded
+    import importlib.util
+
+    spec = importlib.util.spec_from_file_location("rule_check",
+                                                  ROOT / "experiments" / "rule_check.py")
+    module = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(module)
+    entry = raw["entries"][0]
+    assert module.choose(entry["candidates"], "one_standard_error")["name"] == entry["chosen"]
