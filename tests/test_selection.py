@@ -331,3 +331,17 @@ def test_rescaled_candidates_multiply_the_untrained_bandwidth_and_come_before_tr
     # a frozen bandwidth cannot be rescaled: no such candidates
     frozen = TrainingSettings(steps=8, freeze=("log_bandwidth",))
     assert all(c.scope != "rescaled" for c in candidates_for(blueprint, frozen, chosen))
+
+
+def test_fit_with_the_best_or_untrained_rule_keeps_the_best_or_nothing_learned(tmp_path):
+    out = tmp_path / "run"
+    assert main(["fit", "--qubits", "2", "--seed", "5", "--out", str(out), *TINY,
+                 "--set", "selection.rule='best_or_untrained'"]) == 0
+    sel = json.loads((out / "summary.json").read_text())["selection"]
+    assert "two levels of complexity" in sel["rule"]
+    assert sel["chosen"] in ("untrained", sel["best"])
+    by_name = {c["name"]: c for c in sel["candidates"]}
+    best, untrained = by_name[sel["best"]], by_name["untrained"]
+    kept_learned = untrained["cv_accuracy_mean"] < (best["cv_accuracy_mean"]
+                                                    - best["cv_accuracy_se"] - 1e-12)
+    assert (sel["chosen"] != "untrained") == kept_learned
