@@ -497,3 +497,36 @@ def test_projected_concentration_uses_the_shot_noise_of_pauli_expectations():
     # and it is not the fidelity rule's binomial term at the mean value
     m = K[off].mean()
     assert result["shot_noise_std"] < 0.6 * math.sqrt(m * (1 - m) / shots)
+
+
+def test_all_feature_baselines_match_scikit_learn_on_the_same_rows():
+    # Reference: scikit-learn alone (sklearn.preprocessing.StandardScaler fitted on the
+    # training rows, GridSearchCV over SVC(kernel="rbf") with StratifiedKFold) on the rows
+    # of the same split, all 30 columns of scikit-learn's bundled breast-cancer data.
+    from types import SimpleNamespace
+
+    from sklearn.datasets import load_breast_cancer
+    from sklearn.preprocessing import StandardScaler
+
+    from hilbertune.diagnostics import C_GRID
+    from hilbertune.pipeline import classical_baselines
+
+    X, y = load_breast_cancer(return_X_y=True)
+    X, y = X[:180], y[:180]
+    split = split_and_scale(X, y, test_fraction=0.3, seed=3, n_components=4)
+    out = classical_baselines(split, SimpleNamespace(cv_folds=3), 3, X_all=X)
+    assert set(out) == {"rbf_svm", "linear_svm", "rbf_svm_all_features",
+                        "linear_svm_all_features"}
+    scaler = StandardScaler().fit(X[split.train_indices])
+    A, B = scaler.transform(X[split.train_indices]), scaler.transform(X[split.test_indices])
+    grid = {"C": list(C_GRID), "gamma": [10.0 ** k / 30 for k in range(-3, 3)]}
+    search = GridSearchCV(SVC(kernel="rbf"), grid, scoring="accuracy",
+                          cv=StratifiedKFold(3, shuffle=True, random_state=3)).fit(
+                              A, split.y_train)
+    assert out["rbf_svm_all_features"].test_accuracy == search.score(B, split.y_test)
+    assert out["rbf_svm_all_features"].best_params["gamma"] == pytest.approx(
+        search.best_params_["gamma"])
+    # nothing reduced (4 components of 4 columns): no second family
+    narrow = split_and_scale(X[:, :4], y, test_fraction=0.3, seed=3, n_components=4)
+    assert set(classical_baselines(narrow, SimpleNamespace(cv_folds=3), 3,
+                                   X_all=X[:, :4])) == {"rbf_svm", "linear_svm"}

@@ -508,3 +508,50 @@ def test_report_in_headless_chromium(new_run, tmp_path):
     assert shot.exists() and shot.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
     keep = Path(tempfile.gettempdir()) / "hilbertune_report_first_screen.png"
     shutil.copyfile(shot, keep)
+
+
+def reduced_summary(kernels, rbf_all=(-0.12, 0.004, 0.008), linear_all=(-0.02, 0.6, 0.6)):
+    """new_summary of a run whose encoding saw 2 principal components of 30 inputs."""
+    summary = new_summary(kernels)
+    summary["dataset"].update(n_features_raw=30, n_features=2, reduction="pca")
+    summary["baselines"]["rbf_svm_all_features"] = {
+        "name": "rbf_svm", "test_accuracy": 0.97, "train_accuracy": 1.0, "cv_accuracy": 0.95,
+        "best_params": {"C": 10.0, "gamma": 0.003}, "cv_folds": 5}
+    summary["baselines"]["linear_svm_all_features"] = {
+        "name": "linear_svm", "test_accuracy": 0.88, "train_accuracy": 0.9,
+        "cv_accuracy": 0.87, "best_params": {"C": 1.0}, "cv_folds": 5}
+    sig = summary["significance"]
+    sig["per_repeat"]["rbf_svm_all_features"] = [0.95, 0.97, 0.96, 0.98, 0.96]
+    sig["per_repeat"]["linear_svm_all_features"] = [0.86, 0.88, 0.87, 0.85, 0.86]
+    sig["all_features"] = {
+        "correction": "Holm (1979) step-down over these 2 comparisons",
+        "comparisons": {
+            "quantum_vs_rbf_svm_all_features": _comparison(
+                "the chosen quantum kernel", "the tuned RBF SVM on all input features",
+                *rbf_all),
+            "quantum_vs_linear_svm_all_features": _comparison(
+                "the chosen quantum kernel", "the linear SVM on all input features",
+                *linear_all)}}
+    return summary
+
+
+def test_headline_says_what_the_reduction_costs_and_only_when_features_were_reduced(
+        kernels, tmp_path):
+    head = headline(reduced_summary(kernels))
+    full = head["all_features"]
+    assert full["features_seen"] == 2 and full["features_total"] == 30
+    assert full["repeated_splits"]["rbf_svm_all_features"]["mean"] == pytest.approx(0.964)
+    assert "2 principal components of the 30 input features" in full["verdict"]
+    assert "significantly less accurate than the tuned RBF SVM on all input features" in \
+        full["verdict"]
+    assert "not significantly different from the linear SVM on all input features" in \
+        full["verdict"]
+    lines = "\n".join(headline_lines(head))
+    assert "all input features:" in lines and "0.964 +- " in lines
+    assert headline(new_summary(kernels))["all_features"] is None  # nothing reduced
+    html = (make_run(tmp_path / "run", reduced_summary(kernels), kernels)
+            / "report.html").read_text()
+    headline_html = html[html.index("id='headline'"):html.index("</section>",
+                                                                 html.index("id='headline'"))]
+    assert "What the reduction costs" in headline_html
+    assert "tuned RBF SVM, all input features (30)" in headline_html

@@ -345,3 +345,22 @@ def test_fit_with_the_best_or_untrained_rule_keeps_the_best_or_nothing_learned(t
     kept_learned = untrained["cv_accuracy_mean"] < (best["cv_accuracy_mean"]
                                                     - best["cv_accuracy_se"] - 1e-12)
     assert (sel["chosen"] != "untrained") == kept_learned
+
+
+def test_fit_on_reduced_features_also_compares_with_svms_on_every_input_column(tmp_path):
+    out = tmp_path / "run"
+    assert main(["fit", "--data", "breast_cancer", "--qubits", "2", "--seed", "1", "--out",
+                 str(out), *TINY]) == 0
+    summary = json.loads((out / "summary.json").read_text())
+    assert summary["dataset"]["reduction"] == "pca"
+    family = summary["significance"]["all_features"]
+    assert set(family["comparisons"]) == {"quantum_vs_rbf_svm_all_features",
+                                          "quantum_vs_linear_svm_all_features"}
+    per_repeat = summary["significance"]["per_repeat"]
+    assert len(per_repeat["rbf_svm_all_features"]) == len(per_repeat["quantum"]) == 2
+    assert summary["baselines"]["rbf_svm_all_features"]["test_accuracy"] == \
+        per_repeat["rbf_svm_all_features"][0]
+    diffs = np.asarray(per_repeat["quantum"]) - np.asarray(per_repeat["rbf_svm_all_features"])
+    assert family["comparisons"]["quantum_vs_rbf_svm_all_features"]["mean_difference"] == \
+        pytest.approx(diffs.mean())
+    assert "30 input features" in summary["headline"]["all_features"]["verdict"]

@@ -179,9 +179,9 @@ def _learning_verdict(summary: dict, tests: dict) -> str:
             f"accurate than the untrained one ({detail}).")
 
 
-def _classical_verdict(tests: dict) -> str:
+def _classical_verdict(tests: dict, names=COMPARISON_NAMES[1:]) -> str:
     phrases = []
-    for key, other in COMPARISON_NAMES[1:]:
+    for key, other in names:
         test = tests.get(key)
         if test is None:
             phrases.append(f"not tested against {other}")
@@ -198,6 +198,44 @@ def _classical_verdict(tests: dict) -> str:
         else:
             phrases.append(f"not significantly different from {other} ({detail})")
     return "The chosen quantum kernel is " + " and ".join(phrases) + ". " + _CAVEAT
+
+
+#: The classical SVMs on every input column (only when the encoding saw reduced features).
+ALL_FEATURE_MODELS = (("rbf_svm_all_features", "tuned RBF SVM, all input features"),
+                      ("linear_svm_all_features", "linear SVM, all input features"))
+ALL_FEATURE_NAMES = (("quantum_vs_rbf_svm_all_features",
+                      "the tuned RBF SVM on all input features"),
+                     ("quantum_vs_linear_svm_all_features",
+                      "the linear SVM on all input features"))
+
+
+def _all_features(summary: dict, sig: dict):
+    """What the reduction to the encoding's width costs, or None when nothing was reduced."""
+    family = sig.get("all_features")
+    if not isinstance(family, dict) or not isinstance(family.get("comparisons"), dict):
+        return None
+    base = summary.get("baselines") if isinstance(summary.get("baselines"), dict) else {}
+    data = summary.get("dataset") if isinstance(summary.get("dataset"), dict) else {}
+    per_repeat = sig.get("per_repeat") if isinstance(sig.get("per_repeat"), dict) else {}
+    alpha = _number(sig.get("alpha")) or 0.05
+    tests = {key: {**test, "comparison": key, "against": other,
+                   "significant": bool(test.get("significant")),
+                   "alpha": alpha}
+             for key, other in ALL_FEATURE_NAMES
+             if isinstance(test := family["comparisons"].get(key), dict)}
+    seen, total = data.get("n_features"), data.get("n_features_raw")
+    how = {"pca": "principal components", "first": "first columns"}.get(
+        data.get("reduction"), "reduced features")
+    against = _classical_verdict(tests, ALL_FEATURE_NAMES).replace(" " + _CAVEAT, "")
+    verdict = (f"The encoding sees {seen} {how} of the {total} input features; on the same "
+               f"splits with all {total}, t" + against[1:])
+    return {"features_seen": seen, "features_total": total,
+            "test_accuracy": {key: _number((base.get(key) or {}).get("test_accuracy"))
+                              for key, _ in ALL_FEATURE_MODELS},
+            "repeated_splits": {key: _mean_sd(per_repeat.get(key))
+                                for key, _ in ALL_FEATURE_MODELS},
+            "correction": family.get("correction"), "tests": list(tests.values()),
+            "verdict": verdict}
 
 
 def _hardware_bill(summary: dict) -> dict:
@@ -289,6 +327,7 @@ def headline(summary: dict) -> dict:
         "tests": rows,
         "learning_verdict": _learning_verdict(summary, tests),
         "classical_verdict": _classical_verdict(tests),
+        "all_features": _all_features(summary, sig),
         "concentration": concentration,
         "hardware": _hardware_bill(summary),
         "caveat": _CAVEAT,
@@ -332,6 +371,13 @@ def headline_lines(head: dict) -> list:
             f"{names[k]} {v['mean']:.3f} +- {_acc(v['sd'])}" for k, v in shown))
     lines.append(f"  learning: {head.get('learning_verdict')}")
     lines.append(f"  classical: {head.get('classical_verdict')}")
+    if head.get("all_features"):
+        full = head["all_features"]
+        rep_full = full["repeated_splits"]
+        lines.append(f"  all input features: {full['verdict']} Mean +- sd over the splits: "
+                     + " | ".join(f"{name} {v['mean']:.3f} +- {_acc(v['sd'])}"
+                                  for key, name in ALL_FEATURE_MODELS
+                                  if (v := rep_full.get(key))))
     if head.get("tests"):
         lines.append(f"  tests: {head.get('test')}; correction: {head.get('correction')}; "
                      + "; ".join(f"vs {t['against']} p = {_adjusted_text(t)}"
@@ -466,6 +512,13 @@ def _headline_panel(head: dict) -> str:
         f"<tr><th scope='row'>{_esc(name)}{' (chosen: ' + _esc(head['chosen_kernel']) + ')' if key == 'chosen' else ''}</th>"
         f"<td>{_acc(acc.get(key))}</td><td>{_pm(rep.get(key))}</td></tr>"
         for key, name in names.items())
+    full = head.get("all_features")
+    if full:
+        rows += "".join(
+            f"<tr><th scope='row'>{_esc(name)} ({_esc(full['features_total'])})</th>"
+            f"<td>{_acc(full['test_accuracy'].get(key))}</td>"
+            f"<td>{_pm(full['repeated_splits'].get(key))}</td></tr>"
+            for key, name in ALL_FEATURE_MODELS)
     table = (f"<table class='compact'><tr><th>model</th><th>test accuracy, main split "
              f"({_esc(head['main_split'].get('test'))} test rows)</th><th>mean &plusmn; sd "
              f"over {_esc(n_splits if n_splits else 'n/a')} repeated splits</th></tr>{rows}"
@@ -496,7 +549,12 @@ def _headline_panel(head: dict) -> str:
         "<section id='headline' class='headline'><h2>Headline</h2>" + table +
         f"<p class='verdict'><b>Did learning help?</b> {_esc(head['learning_verdict'])}</p>"
         f"<p class='verdict'><b>Quantum against classical:</b> "
-        f"{_esc(head['classical_verdict'])}</p>" + test_text +
+        f"{_esc(head['classical_verdict'])}</p>"
+        + (f"<p class='verdict'><b>What the reduction costs:</b> "
+           f"{_esc(full['verdict'])} <span class='small'>({_esc(full['correction'])}: "
+           + "; ".join(f"vs {_esc(t['against'])}: p = {_esc(_adjusted_text(t))}"
+                       for t in full["tests"]) + ")</span></p>" if full else "")
+        + test_text +
         f"<p><b>Kernel health:</b> <span class='{conc_class}'>{conc_word}</span>. "
         f"{_esc(conc.get('message'))}</p>"
         f"<p><b>Hardware bill:</b> {bill}</p></section>")
@@ -543,6 +601,11 @@ def _accuracy_section(summary: dict, head: dict) -> str:
         values = base.get(key, {})
         rows.append((label, values.get("train_accuracy"), values.get("test_accuracy"),
                      _pm(rep.get(key))))
+    full = head.get("all_features")
+    for key, label in ALL_FEATURE_MODELS if full else ():
+        values = base.get(key, {})
+        rows.append((f"{label} ({full['features_total']})", values.get("train_accuracy"),
+                     values.get("test_accuracy"), _pm(full["repeated_splits"].get(key))))
     table = "<table><tr>" + "".join(f"<th>{h}</th>" for h in (
         "model", "train accuracy (main split)", "test accuracy (main split)",
         "test accuracy over repeated splits (mean ± sd)")) + "</tr>" + "".join(

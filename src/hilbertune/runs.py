@@ -402,11 +402,15 @@ def _execute_fit(config: dict, out_dir: Path, *, overwrite: bool, progress: bool
                             checkpoint_dir=str(out_dir / "checkpoints"), progress=progress)
     if progress and settings.workers > 1:
         from rich.console import Console
+        from rich.progress import BarColumn, MofNCompleteColumn, Progress, \
+            TextColumn, TimeElapsedColumn
 
-        with Console(stderr=True).status(
-                f"learning, selecting and evaluating on {settings.repeats} splits "
-                f"({settings.workers} at a time)"):
-            parts = run()
+        with Progress(TextColumn("{task.description}"), BarColumn(), MofNCompleteColumn(),
+                      TimeElapsedColumn(), console=Console(stderr=True),
+                      transient=True) as bar:
+            task = bar.add_task(f"learning, selecting and evaluating splits "
+                                f"({settings.workers} at a time)", total=settings.repeats)
+            parts = run(on_done=lambda: bar.advance(task))
     else:
         parts = run()
     main = parts[0]
@@ -530,12 +534,15 @@ def _summarize(config, dataset, n_features, blueprint, split, settings, main, si
             "rbf_svm": rbf.summary(),
             "linear_svm": linear.summary(),
             "untrained_quantum": {"test_accuracy": main.accuracies["untrained"]},
+            **{key: main.baselines[key].summary() for key in (
+                "rbf_svm_all_features", "linear_svm_all_features") if key in main.baselines},
         },
         "significance": significance,
         "diagnostics": diag,
         "dataset": {"source": dataset.source, "invented": bool(dataset.invented),
                     "sha256": dataset.sha256, "n_samples": int(len(dataset.y)),
                     "n_features_raw": int(dataset.X.shape[1]), "n_features": n_features,
+                    "reduction": split.preprocessing.reduce,
                     "feature_names": list(dataset.feature_names),
                     "target": dataset.target_name, "classes": [str(c) for c in classes],
                     "train_size": int(len(y_train)), "test_size": int(len(y_test)),
