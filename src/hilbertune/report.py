@@ -41,7 +41,7 @@ text-align:left;vertical-align:top}th{background:#f3f3f3}
 margin:.4em 0}.verdict{font-weight:600}img{max-width:100%}
 .headline{border:2px solid #4a6fa5;border-radius:6px;padding:.2em 1em .4em;margin:.6em 0;
 background:#f6f9ff}.headline h2{margin-top:.3em;border:none}.headline p{margin:.35em 0}
-.compact td,.compact th{padding:.15em .5em}.small{font-size:.85em;color:#444}
+.compact td,.compact th{padding:.15em .5em}.small{font-size:.85em;color:#444;font-weight:normal}
 .intro{color:#333;background:#f7f7f7;border-left:3px solid #bbb;padding:.3em .7em}
 .good{color:#1d6b2a;font-weight:600}.bad{color:#a11;font-weight:600}
 code{background:#f3f3f3;padding:0 .2em}nav{margin:.6em 0;font-size:.9em}
