@@ -49,7 +49,8 @@ def new_summary(kernels, *, learning=(0.06, 0.004, 0.012), rbf=(0.02, 0.3, 0.6),
     per_repeat = {"quantum": [0.80, 0.85, 0.90, 0.83, 0.87],
                   "untrained": [0.75, 0.78, 0.84, 0.80, 0.79],
                   "rbf_svm": [0.79, 0.86, 0.85, 0.80, 0.84],
-                  "linear_svm": [0.60, 0.65, 0.70, 0.62, 0.66]}
+                  "linear_svm": [0.60, 0.65, 0.70, 0.62, 0.66],
+                  "majority_class": [0.54, 0.54, 0.55, 0.54, 0.54]}
     curve = [{"shots": s, "test_accuracy_mean": 0.7 + 0.03 * i, "test_accuracy_std": 0.02,
               "alignment_mean": 0.2, "alignment_std": 0.01, "relative_gram_error_mean": 0.1,
               "repair_relative_change_mean": 0.0, "total_executions": 645 * s}
@@ -67,7 +68,8 @@ def new_summary(kernels, *, learning=(0.06, 0.004, 0.012), rbf=(0.02, 0.3, 0.6),
                       "linear_svm": {"name": "linear_svm", "test_accuracy": 0.64,
                                      "train_accuracy": 0.66, "cv_accuracy": 0.63,
                                      "best_params": {"C": 1.0}, "cv_folds": 5},
-                      "untrained_quantum": {"test_accuracy": 0.79}},
+                      "untrained_quantum": {"test_accuracy": 0.79},
+                      "majority_class": {"test_accuracy": 0.54}},
         "significance": {
             "test": "corrected resampled t-test (Nadeau & Bengio 2003)",
             "correction": "Holm (1979) step-down over the 3 comparisons", "alpha": ALPHA,
@@ -140,6 +142,8 @@ def old_summary(summary):
                 "chosen_per_repeat", "n_train", "n_test"):
         sig.pop(key)
     sig["per_repeat"].pop("untrained")
+    sig["per_repeat"].pop("majority_class")
+    old["baselines"].pop("majority_class")
     geo = old["diagnostics"]["geometric_difference"]
     for key in ("curves", "classical_gram", "lambda_rule"):
         geo.pop(key)
@@ -192,9 +196,10 @@ def test_headline_numbers_come_from_the_summary(kernels):
     head = headline(summary)
     json.dumps(head, allow_nan=False)
     assert head["test_accuracy"] == {"chosen": 0.86, "untrained": 0.79, "rbf_svm": 0.84,
-                                     "linear_svm": 0.64}
+                                     "linear_svm": 0.64, "majority_class": 0.54}
     for key, source in (("chosen", "quantum"), ("untrained", "untrained"),
-                        ("rbf_svm", "rbf_svm"), ("linear_svm", "linear_svm")):
+                        ("rbf_svm", "rbf_svm"), ("linear_svm", "linear_svm"),
+                        ("majority_class", "majority_class")):
         values = summary["significance"]["per_repeat"][source]
         # numpy: mean and sample standard deviation (ddof=1)
         assert head["repeated_splits"][key]["mean"] == pytest.approx(np.mean(values))
@@ -257,6 +262,10 @@ def test_headline_of_an_older_summary_says_what_was_not_tested(kernels):
     assert head["correction"].startswith("none")
     assert head["repeated_splits"]["untrained"] is None
     assert head["chosen_kernel"].startswith("learned")
+    # no reference row where the run did not record it
+    assert head["test_accuracy"]["majority_class"] is None
+    assert "most common class" not in "\n".join(headline_lines(head))
+    assert "most common class" in "\n".join(headline_lines(headline(new_summary(kernels))))
     assert headline(old_summary(new_summary(kernels)) | {"hardware": None})["hardware"][
         "available"] is False
 

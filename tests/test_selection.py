@@ -364,3 +364,33 @@ def test_fit_on_reduced_features_also_compares_with_svms_on_every_input_column(t
     assert family["comparisons"]["quantum_vs_rbf_svm_all_features"]["mean_difference"] == \
         pytest.approx(diffs.mean())
     assert "30 input features" in summary["headline"]["all_features"]["verdict"]
+
+
+def test_majority_rate_is_the_share_of_the_most_common_training_class_in_the_test_rows():
+    from hilbertune.pipeline import majority_rate
+
+    # by hand: training majority is "b" (3 of 5); 2 of the 4 test rows are "b"
+    assert majority_rate(["a", "b", "b", "a", "b"], ["b", "a", "b", "a"]) == 0.5
+    # ties go to the first class in sorted order (numpy.unique order): 0
+    assert majority_rate([1, 0, 0, 1], [0, 0, 0, 1]) == 0.75
+
+
+def test_on_imbalanced_noise_the_report_warns_that_accuracy_says_little(tmp_path):
+    # INVENTED: 3 pure-noise columns, 10% of the rows in class 1; every classifier is near
+    # the 0.9 of always answering class 0, and the summary must say so
+    rng = np.random.default_rng(0)
+    rows = ["a,b,c,label"] + [f"{x:.5f},{u:.5f},{v:.5f},{int(i % 10 == 0)}"
+                              for i, (x, u, v) in enumerate(rng.normal(size=(80, 3)))]
+    path = tmp_path / "noise.csv"
+    path.write_text("\n".join(rows) + "\n")
+    out = tmp_path / "run"
+    assert main(["fit", "--data", str(path), "--target", "label", "--qubits", "3", "--out",
+                 str(out), *TINY]) == 0
+    summary = json.loads((out / "summary.json").read_text())
+    floor = summary["significance"]["per_repeat"]["majority_class"]
+    # by hand: 8 of 80 rows are class 1; the stratified 30% test part (24 rows) holds 2 of
+    # them, so always answering 0 is right on 22 of 24
+    assert floor[0] == summary["baselines"]["majority_class"]["test_accuracy"] == \
+        pytest.approx(22 / 24)
+    assert any("most common class" in c for c in summary["cautions"])
+    assert summary["headline"]["test_accuracy"]["majority_class"] == floor[0]

@@ -244,6 +244,13 @@ def evaluate_part(blueprint, split, selection, settings: FitSettings,
                       train_accuracy)
 
 
+def majority_rate(y_train, y_test) -> float:
+    """Test accuracy of always answering the most common training class (ties: the first
+    in sorted order): the floor any classifier must clear on imbalanced data."""
+    values, counts = np.unique(np.asarray(y_train), return_counts=True)
+    return float(np.mean(np.asarray(y_test) == values[int(np.argmax(counts))]))
+
+
 def run_part(dataset, blueprint, settings: FitSettings, split_seed: int, *, split=None,
              checkpoint_dir=None, progress: bool = False) -> PartResult:
     """One split, whole: split, learn + select, evaluate, classical baselines."""
@@ -259,7 +266,8 @@ def run_part(dataset, blueprint, settings: FitSettings, split_seed: int, *, spli
     started = time.perf_counter()
     baselines = classical_baselines(split, settings, split_seed, X_all=dataset.X)
     seconds["classical_baselines"] = time.perf_counter() - started
-    accuracies = {**ev.accuracies, **{name: b.test_accuracy for name, b in baselines.items()}}
+    accuracies = {**ev.accuracies, **{name: b.test_accuracy for name, b in baselines.items()},
+                  "majority_class": majority_rate(split.y_train, split.y_test)}
     return PartResult(split_seed, selection, ev.params, ev.k_train, ev.k_test, ev.k0_train,
                       ev.k0_test, ev.C, ev.C_tuned, ev.model, accuracies, ev.train_accuracy,
                       baselines, seconds)
@@ -325,6 +333,8 @@ def compare_parts(parts, settings: FitSettings) -> dict:
     n_train = len(parts[0].k_train)
     n_test = len(parts[0].k_test)
     names = ["chosen", "untrained", "rbf_svm", "linear_svm"]
+    if all("majority_class" in p.accuracies for p in parts):
+        names.append("majority_class")  # a reference row, not tested
     reduced = all("rbf_svm_all_features" in p.accuracies for p in parts)
     if reduced:
         names += ["rbf_svm_all_features", "linear_svm_all_features"]

@@ -94,7 +94,8 @@ def _table(rows, header=None) -> str:
 MODELS = (("chosen", "quantum", "chosen quantum kernel"),
           ("untrained", "untrained", "untrained quantum kernel"),
           ("rbf_svm", "rbf_svm", "tuned RBF SVM"),
-          ("linear_svm", "linear_svm", "linear SVM"))
+          ("linear_svm", "linear_svm", "linear SVM"),
+          ("majority_class", "majority_class", "always the most common class (reference)"))
 
 #: Comparisons of the significance section: (key, plain name of the other model).
 COMPARISON_NAMES = (("learned_vs_untrained", "the untrained quantum kernel"),
@@ -297,7 +298,9 @@ def headline(summary: dict) -> dict:
     accuracy = {"chosen": _number(summary.get("test_accuracy")),
                 "untrained": _number(summary.get("untrained_test_accuracy")),
                 "rbf_svm": _number((base.get("rbf_svm") or {}).get("test_accuracy")),
-                "linear_svm": _number((base.get("linear_svm") or {}).get("test_accuracy"))}
+                "linear_svm": _number((base.get("linear_svm") or {}).get("test_accuracy")),
+                "majority_class": _number((base.get("majority_class") or {}).get(
+                    "test_accuracy"))}
     per_repeat = sig.get("per_repeat") if isinstance(sig.get("per_repeat"), dict) else {}
     repeated = {key: _mean_sd(per_repeat.get(source)) for key, source, _ in MODELS}
     rows = _comparisons(sig)
@@ -355,9 +358,15 @@ def _acc(value) -> str:
     return "n/a" if value is None else f"{value:.3f}"
 
 
+def _shown_models(head: dict) -> dict:
+    """key -> plain name of the headline's models (the reference row only when known)."""
+    known = head.get("test_accuracy", {}).get("majority_class") is not None
+    return {key: name for key, _, name in MODELS if key != "majority_class" or known}
+
+
 def headline_lines(head: dict) -> list:
     """The headline as a few plain lines for the terminal (``fit`` prints them first)."""
-    names = {key: name for key, _, name in MODELS}
+    names = _shown_models(head)
     lines = ["Headline (" + head.get("caveat", _CAVEAT).rstrip(".") + ")"]
     acc = head.get("test_accuracy", {})
     split = head.get("main_split", {})
@@ -505,7 +514,7 @@ def _esc(value) -> str:
 
 
 def _headline_panel(head: dict) -> str:
-    names = {key: name for key, _, name in MODELS}
+    names = _shown_models(head)
     acc, rep = head["test_accuracy"], head["repeated_splits"]
     n_splits = next((v["splits"] for v in rep.values() if v), None)
     rows = "".join(
@@ -606,6 +615,10 @@ def _accuracy_section(summary: dict, head: dict) -> str:
         values = base.get(key, {})
         rows.append((f"{label} ({full['features_total']})", values.get("train_accuracy"),
                      values.get("test_accuracy"), _pm(full["repeated_splits"].get(key))))
+    if head["test_accuracy"].get("majority_class") is not None:
+        rows.append(("always the most common class (reference)", None,
+                     head["test_accuracy"]["majority_class"],
+                     _pm(rep.get("majority_class"))))
     table = "<table><tr>" + "".join(f"<th>{h}</th>" for h in (
         "model", "train accuracy (main split)", "test accuracy (main split)",
         "test accuracy over repeated splits (mean ± sd)")) + "</tr>" + "".join(

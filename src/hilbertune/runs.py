@@ -460,6 +460,11 @@ def enable_compile_cache(setting: str) -> None:
         jax.config.update("jax_persistent_cache_min_compile_time_secs", 0.5)
 
 
+#: A caution is written when the chosen kernel does not clear the majority-class rate by
+#: this much (our choice: 2 points, about one test row in 50).
+MAJORITY_MARGIN = 0.02
+
+
 def _summarize(config, dataset, n_features, blueprint, split, settings, main, significance):
     """summary.json's content (without hardware, timings) and the arrays for kernels.npz."""
     from hilbertune import diagnostics
@@ -512,6 +517,15 @@ def _summarize(config, dataset, n_features, blueprint, split, settings, main, si
             "training.freeze, make learning more reliable.")
     if run is not None and run.stop_reason and "non-finite" in run.stop_reason.lower():
         cautions.append(f"Training stopped early: {run.stop_reason}")
+    floor = significance["per_repeat"].get("majority_class")
+    if floor and np.mean(significance["per_repeat"]["quantum"]) < np.mean(floor) + \
+            MAJORITY_MARGIN:
+        cautions.append(
+            f"The chosen kernel's mean test accuracy over the splits "
+            f"({np.mean(significance['per_repeat']['quantum']):.3f}) is within "
+            f"{MAJORITY_MARGIN * 100:.0f} points of always answering the most common class "
+            f"({np.mean(floor):.3f}): accuracy says little on these classes; compare per-class "
+            "results (predict) or rebalance the data.")
     cautions.append(f"Accuracies come from one split of {len(y_train)} training and "
                     f"{len(y_test)} test rows; the significance tests use {len(significance['per_repeat']['quantum'])} "
                     "repeated splits, each with its own learning and selection.")
@@ -534,6 +548,7 @@ def _summarize(config, dataset, n_features, blueprint, split, settings, main, si
             "rbf_svm": rbf.summary(),
             "linear_svm": linear.summary(),
             "untrained_quantum": {"test_accuracy": main.accuracies["untrained"]},
+            "majority_class": {"test_accuracy": main.accuracies["majority_class"]},
             **{key: main.baselines[key].summary() for key in (
                 "rbf_svm_all_features", "linear_svm_all_features") if key in main.baselines},
         },
