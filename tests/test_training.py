@@ -417,3 +417,16 @@ def test_training_raises_alignment_and_test_accuracy_on_a_checkerboard():
     first, last = result.history[0], result.history[-1]
     assert last["centered_alignment"] > first["centered_alignment"] + 0.1
     assert before < 0.6 and after > before + 0.15, (before, after)
+
+
+def test_default_batch_is_full_up_to_512_rows_and_class_balanced_beyond():
+    from hilbertune.training import _batch_counts
+
+    default = TrainingSettings().batch_size
+    assert _batch_counts(np.arange(400) % 2, 2, default) is None  # full batch
+    # 1200 rows, classes 900 / 300: 256 of each per step (class-balanced, 512 in all)
+    y = np.r_[np.zeros(900, int), np.ones(300, int)]
+    assert _batch_counts(y, 2, default) == (256, 256)
+    # a class smaller than its share gives all its rows
+    y = np.r_[np.zeros(1100, int), np.ones(100, int)]
+    assert _batch_counts(y, 2, default) == (256, 100)

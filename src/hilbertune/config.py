@@ -88,7 +88,9 @@ SCHEMA = {
         "schedule": ("constant", str, _one_of("constant", "cosine", "warmup_cosine"),
                      "learning-rate schedule"),
         "clip_norm": (1.0, float, _NON_NEGATIVE, "gradient clipping norm (0 = off)"),
-        "batch_size": (0, int, _NON_NEGATIVE, "class-balanced mini-batch size (0 = full batch)"),
+        "batch_size": (512, int, _NON_NEGATIVE, "class-balanced mini-batch size; training "
+                       "parts of at most this many rows train full batch (0 = always full "
+                       "batch)"),
         "validation_fraction": (0.2, float, _FRACTION0, "share of training rows for early stopping"),
         "patience": (20, int, _NON_NEGATIVE, "steps without validation gain before stopping "
                      "(0 = never stop early)"),

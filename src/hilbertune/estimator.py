@@ -77,8 +77,9 @@ class EncodingClassifier(ClassifierMixin, BaseEstimator):
       encoding_options: extra keyword options for the family (dict), e.g. {"entangler": "linear"}.
       objective, steps, learning_rate, optimizer, batch_size, validation_fraction, bandwidth:
         training settings (see ``hilbertune.training.TrainingSettings``). The defaults are
-        small (15 full-batch steps, no validation split, so no early stopping): each new data
-        size costs one compilation of the training step, which dominates short fits.
+        small (15 steps, full batch up to 512 rows and class-balanced mini-batches of 512
+        beyond, no validation split, so no early stopping): each new data size costs one
+        compilation of the training step, which dominates short fits.
       C: SVM constant; None = chosen by stratified CV over ``c_grid`` with ``cv`` folds.
       select: True (default) = learn several candidates and keep the one chosen by nested
         inner cross-validation on the training rows (``hilbertune.selection``): the untrained
@@ -107,7 +108,7 @@ class EncodingClassifier(ClassifierMixin, BaseEstimator):
 
     def __init__(self, *, family="layered", n_qubits=None, layers=2, encoding_options=None,
                  objective="centered_alignment", steps=15, learning_rate=0.05,
-                 optimizer="adam", batch_size=0, validation_fraction=0.0, bandwidth=None,
+                 optimizer="adam", batch_size=512, validation_fraction=0.0, bandwidth=None,
                  C=None, c_grid=(0.1, 1.0, 10.0, 100.0), cv=3, select=True,
                  selection_options=None, random_state=None):
         self.family = family

@@ -58,7 +58,9 @@ class TrainingSettings(NamedTuple):
     optimizer: str = "adam"  # one of OPTIMIZERS (optax)
     schedule: str = "constant"  # one of SCHEDULES
     clip_norm: float = 1.0  # clip the global gradient norm to this; 0 disables clipping
-    batch_size: int = 0  # samples per step, class-balanced; 0 (or >= train size) = full batch
+    batch_size: int = 512  # samples per step, class-balanced; 0 (or >= train size) = full
+    #                        batch. 512: full batch on small tables, and on large ones a step
+    #                        costs O(512^2) kernel entries (O(512^3) for ridge LOO), not O(N^3)
     validation_fraction: float = 0.2  # stratified hold-out for early stopping; 0 disables
     patience: int = 20  # stop after this many steps without validation improvement; 0 = never
     l2_penalty: float = 0.0  # strength of sum ||p - p_initial||^2 over the trained parameters
