@@ -555,6 +555,9 @@ def test_headline_says_what_the_reduction_costs_and_only_when_features_were_redu
         full["verdict"]
     assert "not significantly different from the linear SVM on all input features" in \
         full["verdict"]
+    assert "more qubits" in full["verdict"]  # a significant loss names the fix
+    even = headline(reduced_summary(kernels, rbf_all=(-0.01, 0.5, 0.9)))["all_features"]
+    assert "more qubits" not in even["verdict"]
     lines = "\n".join(headline_lines(head))
     assert "all input features:" in lines and "0.964 +- " in lines
     assert headline(new_summary(kernels))["all_features"] is None  # nothing reduced

@@ -230,6 +230,11 @@ def _all_features(summary: dict, sig: dict):
     against = _classical_verdict(tests, ALL_FEATURE_NAMES).replace(" " + _CAVEAT, "")
     verdict = (f"The encoding sees {seen} {how} of the {total} input features; on the same "
                f"splits with all {total}, t" + against[1:])
+    if any(t["significant"] and (_number(t.get("mean_difference")) or 0) < 0
+           for t in tests.values()):
+        verdict += (" The reduction loses information the classical kernels use: more qubits "
+                    "(encoding.qubits) or, with the layered family, more features re-uploaded "
+                    "onto the same qubits (data.features) let the encoding see more of it.")
     return {"features_seen": seen, "features_total": total,
             "test_accuracy": {key: _number((base.get(key) or {}).get("test_accuracy"))
                               for key, _ in ALL_FEATURE_MODELS},
