@@ -205,8 +205,8 @@ class EncodingClassifier(ClassifierMixin, BaseEstimator):
             return (result.params, result.initial_params, result.history,
                     result.stop_reason, f"full/{self.objective}", None)
         options = self._selection_settings(y)
-        start = starting_params(self.blueprint_, X, y, settings, seed=seed)
         if options.folds < 2:  # a class with one row: no inner CV possible; keep the simplest
+            start = starting_params(self.blueprint_, X, y, settings, seed=seed)
             return start, start, [], "not trained: a class has a single row, too few to " \
                 "judge a learned encoding", "untrained", None
 
@@ -218,8 +218,8 @@ class EncodingClassifier(ClassifierMixin, BaseEstimator):
         run = selection.run_of(selection.chosen)
         history, reason = ((run.history, run.stop_reason) if run is not None else
                            ([], f"not trained: {selection.chosen} chosen by inner CV"))
-        return (selection.params[selection.chosen], start, history, reason,
-                selection.chosen, selection)
+        return (selection.params[selection.chosen], selection.params["untrained"], history,
+                reason, selection.chosen, selection)
 
     def _check_fitted(self):
         if not hasattr(self, "svm_"):

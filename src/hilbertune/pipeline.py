@@ -216,7 +216,7 @@ def classical_baselines(split, settings: FitSettings, split_seed: int, X_all=Non
     full = (scaler.transform(X_all[split.train_indices]), split.y_train,
             scaler.transform(X_all[split.test_indices]), split.y_test)
     width = X_all.shape[1]
-    gammas = tuple(float(v) / width for v in 10.0 ** np.arange(-3, 3))
+    gammas = tuple(g / width for g in diagnostics.GAMMA_GRID)
     out["rbf_svm_all_features"] = diagnostics.tuned_rbf_svm(
         *full, seed=split_seed, cv=settings.cv_folds, gamma_grid=gammas)
     out["linear_svm_all_features"] = diagnostics.linear_svm(*full, seed=split_seed,

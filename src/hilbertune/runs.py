@@ -518,11 +518,11 @@ def _summarize(config, dataset, n_features, blueprint, split, settings, main, si
     if run is not None and run.stop_reason and "non-finite" in run.stop_reason.lower():
         cautions.append(f"Training stopped early: {run.stop_reason}")
     floor = significance["per_repeat"].get("majority_class")
-    if floor and np.mean(significance["per_repeat"]["quantum"]) < np.mean(floor) + \
-            MAJORITY_MARGIN:
+    chosen_mean = float(np.mean(significance["per_repeat"]["quantum"]))
+    if floor and chosen_mean < np.mean(floor) + MAJORITY_MARGIN:
         cautions.append(
             f"The chosen kernel's mean test accuracy over the splits "
-            f"({np.mean(significance['per_repeat']['quantum']):.3f}) is within "
+            f"({chosen_mean:.3f}) is within "
             f"{MAJORITY_MARGIN * 100:.0f} points of always answering the most common class "
             f"({np.mean(floor):.3f}): accuracy says little on these classes; compare per-class "
             "results (predict) or rebalance the data.")

@@ -261,15 +261,13 @@ def _reason(scores, best: int, chosen: int, rule: str, folds: int, repeats: int 
         if best == 0:
             return text + "; it is the untrained encoding, so nothing learned is kept."
         u = scores[0]
+        rule_text = ("(one-standard-error rule with two levels of complexity, nothing learned "
+                     "and learned; Hastie et al. 2009, 7.10).")
         if chosen == best:
             return text + (f"; it beats the untrained encoding ({u.mean:.3f}) by more than one "
-                           "standard error, so it is chosen (one-standard-error rule with two "
-                           "levels of complexity, nothing learned and learned; Hastie et al. "
-                           "2009, 7.10).")
+                           "standard error, so it is chosen " + rule_text)
         return text + (f"; the untrained encoding ({u.mean:.3f}) is within one standard error "
-                       "of it, so nothing learned is kept (one-standard-error rule with two "
-                       "levels of complexity, nothing learned and learned; Hastie et al. "
-                       "2009, 7.10).")
+                       "of it, so nothing learned is kept " + rule_text)
     if chosen == best:
         simpler = [s.candidate.name for s in scores[:chosen]]
         tail = (f"; no simpler candidate ({', '.join(simpler)}) comes within one standard "
