@@ -405,6 +405,9 @@ RULE_TEXT = {
                          "standard error of it (the one-standard-error rule of Hastie, "
                          "Tibshirani & Friedman 2009, 7.10, with two levels of complexity: "
                          "nothing learned, learned)",
+    "paired": "the best candidate if, on the same inner folds, its gain over the untrained "
+              "encoding exceeds one corrected standard error of the paired difference "
+              "(Nadeau & Bengio 2003); otherwise the untrained encoding",
     "best": "highest mean"}
 
 

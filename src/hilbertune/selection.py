@@ -30,7 +30,7 @@ from hilbertune.circuits import PARAM_NAMES, Blueprint
 from hilbertune.errors import InvalidInputError
 
 SCOPES = ("untrained", "rescaled", "bandwidth", "full")
-RULES = ("one_standard_error", "best_or_untrained", "best")
+RULES = ("one_standard_error", "best_or_untrained", "paired", "best")
 SCOPE_TEXT = {"untrained": "the encoding at its initial parameters (nothing learned)",
               "rescaled": "the untrained encoding with its bandwidth multiplied by a factor "
                           "(a grid searched by inner CV, as the RBF SVM's gamma is)",
@@ -226,8 +226,10 @@ def trainable_count(blueprint: Blueprint, candidate: Candidate, freeze=()) -> in
 
 # --------------------------------------------------------------------------- the rule
 
-def one_standard_error_choice(scores, rule: str = "one_standard_error"):
+def one_standard_error_choice(scores, rule: str = "one_standard_error", folds: int = 0):
     """(best, chosen) indices into ``scores`` (ordered simplest first).
+
+    ``folds`` (K of the inner K-fold splits) is needed by ``rule="paired"`` only.
 
     ``best`` has the highest mean accuracy (the simplest among ties). With the
     one-standard-error rule the chosen one is the simplest candidate whose mean is at least
@@ -236,7 +238,12 @@ def one_standard_error_choice(scores, rule: str = "one_standard_error"):
     of the best model"); with ``rule="best"`` it is ``best``. ``rule="best_or_untrained"``
     is the same rule with two levels of complexity only, nothing learned (``scores[0]``,
     the untrained encoding) and learned: ``best`` unless the untrained encoding's mean is
-    within one standard error of it.
+    within one standard error of it. ``rule="paired"`` asks the same question on the same
+    folds: ``best`` when its mean fold-by-fold gain over the untrained encoding exceeds one
+    corrected standard error of that paired difference (``paired_gain``), otherwise the
+    untrained encoding. The folds are shared, so the fold-to-fold spread that both
+    candidates feel cancels in the difference (the paired, corrected resampled t-statistic
+    of Nadeau & Bengio 2003, compared with 1).
     """
     means = [s.mean for s in scores]
     best = int(np.argmax(means))  # argmax takes the first maximum: the simplest of ties
@@ -245,9 +252,26 @@ def one_standard_error_choice(scores, rule: str = "one_standard_error"):
     if rule == "best_or_untrained":
         keep = scores[0].mean >= scores[best].mean - scores[best].se - 1e-12
         return best, 0 if keep else best
+    if rule == "paired":
+        if folds < 2:
+            raise ValueError("the paired rule needs the inner folds K (folds >= 2)")
+        gain, se = paired_gain(scores[best], scores[0], folds)
+        return best, best if best and gain > se + 1e-12 else 0
     threshold = scores[best].mean - scores[best].se
     chosen = next(i for i, s in enumerate(scores) if s.mean >= threshold - 1e-12)
     return best, chosen
+
+
+def paired_gain(score: CandidateScore, untrained: CandidateScore, folds: int) -> tuple:
+    """(mean, corrected standard error) of ``score``'s fold-by-fold gain over ``untrained``.
+
+    Both were scored on the same inner folds (``folds``-fold splits, repeated), in the same
+    order; the standard error is ``corrected_standard_error`` of the J differences (Nadeau
+    & Bengio 2003).
+    """
+    diff = (np.asarray(score.fold_accuracies, dtype=np.float64)
+            - np.asarray(untrained.fold_accuracies, dtype=np.float64))
+    return float(diff.mean()), corrected_standard_error(diff, folds)
 
 
 def _reason(scores, best: int, chosen: int, rule: str, folds: int, repeats: int = 1) -> str:
@@ -257,6 +281,18 @@ def _reason(scores, best: int, chosen: int, rule: str, folds: int, repeats: int 
             f"standard error {b.se:.3f} over {folds} folds{times} of the training part)")
     if rule == "best":
         return text + "; it is chosen (rule: highest mean)."
+    if rule == "paired":
+        if best == 0:
+            return text + "; it is the untrained encoding, so nothing learned is kept."
+        gain, se = paired_gain(b, scores[0], folds)
+        rule_text = (f"on the same inner folds it beats the untrained encoding by "
+                     f"{100 * gain:+.1f} points, standard error of the paired difference "
+                     f"{100 * se:.1f}")
+        if chosen == best:
+            return text + f"; {rule_text}, more than one standard error, so it is chosen " \
+                "(paired rule; Nadeau & Bengio 2003)."
+        return text + f"; {rule_text}, not more than one standard error, so nothing learned " \
+            "is kept (paired rule; Nadeau & Bengio 2003)."
     if rule == "best_or_untrained":
         if best == 0:
             return text + "; it is the untrained encoding, so nothing learned is kept."
@@ -404,7 +440,7 @@ def learn_and_select(blueprint: Blueprint, X, y, training, settings: SelectionSe
         scores.append(CandidateScore(c, trainable_count(blueprint, c, training.freeze),
                                      tuple(float(a) for a in row), float(row.mean()), sd,
                                      corrected_standard_error(row, settings.folds)))
-    best, chosen = one_standard_error_choice(scores, settings.rule)
+    best, chosen = one_standard_error_choice(scores, settings.rule, settings.folds)
     params, results = learn(np.arange(len(y)), final=True)
     return Selection(tuple(scores), candidates[best].name, candidates[chosen].name,
                      _reason(scores, best, chosen, settings.rule, settings.folds,
