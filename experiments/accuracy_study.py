@@ -202,7 +202,10 @@ def run_entry(name, qubits, loader, seed, settings) -> dict:
                                            objectives=tuple(sel["objectives"]),
                                            trajectory=tuple(sel["trajectory"]),
                                            bandwidth_factors=tuple(sel["bandwidth_factors"]),
-                                           folds=sel["folds"])
+                                           folds=sel["folds"],
+                                           # the rule of the recorded runs (the default
+                                           # until rule_check round 2); analyses replay any
+                                           rule="one_standard_error")
 
     def gram(p, A, B=None):
         return np.asarray(quantum_gram(blueprint, p, A, B), np.float64)

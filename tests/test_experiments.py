@@ -100,9 +100,9 @@ def test_fit_benchmark_runs_and_reports_every_stage(tmp_path):
 
 def test_rule_check_runs_and_states_its_decision(tmp_path):
     out = _run("rule_check.py", "--out", tmp_path)
-    raw = json.loads((tmp_path / "rule_check.json").read_text())
-    assert len(raw["entries"]) == 1 and "adopt best_or_untrained:" in out
-    table = (tmp_path / "rule_check.md").read_text()
+    raw = json.loads((tmp_path / "rule_check_round2.json").read_text())
+    assert len(raw["entries"]) == 1 and "adopt paired:" in out
+    table = (tmp_path / "rule_check_round2.md").read_text()
     assert "## Decision" in table and "says nothing about hardware" in table
     # the replayed one-standard-error choice is the one learn_and_select recorded
     import importlib.util
@@ -113,3 +113,16 @@ def test_rule_check_runs_and_states_its_decision(tmp_path):
     spec.loader.exec_module(module)
     entry = raw["entries"][0]
     assert module.choose(entry["candidates"], "one_standard_error")["name"] == entry["chosen"]
+
+
+def test_rule_check_round_one_replays_to_its_committed_table(tmp_path):
+    # the committed raw results of round 1, replayed by today's rules, give the committed
+    # table (a change of a rule's code would show here)
+    results = ROOT / "experiments" / "results"
+    (tmp_path / "rule_check.json").write_text((results / "rule_check.json").read_text())
+    done = subprocess.run([sys.executable, str(ROOT / "experiments" / "rule_check.py"),
+                           "--round", "1", "--analyse-only", "--out", str(tmp_path)],
+                          capture_output=True, text=True, timeout=300, check=False)
+    assert done.returncode == 0, done.stderr[-2000:]
+    assert "adopt best_or_untrained: False" in done.stdout
+    assert (tmp_path / "rule_check.md").read_text() == (results / "rule_check.md").read_text()

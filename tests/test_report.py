@@ -104,7 +104,8 @@ def new_summary(kernels, *, learning=(0.06, 0.004, 0.012), rbf=(0.02, 0.3, 0.6),
                  "steps": 60, "description": "all weights, biases and the bandwidth",
                  "trainable_parameters": 19, "cv_accuracy_mean": 0.861,
                  "cv_accuracy_sd": 0.04, "cv_accuracy_se": 0.023,
-                 "cv_accuracy_folds": [0.82, 0.9, 0.86], "alignment": 0.3}]},
+                 "cv_accuracy_folds": [0.82, 0.9, 0.86], "alignment": 0.3,
+                 "cv_gain_over_untrained": 0.15, "cv_gain_over_untrained_se": 0.021}]},
         "timings": {"selection": 3.2, "evaluation": 1.1, "repeated_splits": 9.5},
         "diagnostics": diagnostics,
         "dataset": {"source": "hand-built test data", "invented": True, "n_samples": 43,
@@ -222,9 +223,13 @@ def test_headline_numbers_come_from_the_summary(kernels):
      ["Learning helped", "not significantly different from the tuned RBF SVM",
       "significantly more accurate than the linear SVM"]),
     ((0.01, 0.4, 0.8), (-0.1, 0.001, 0.003), (0.01, 0.5, 0.8),
-     ["Learning did not help", "significantly less accurate than the tuned RBF SVM"]),
+     ["Not shown: the chosen kernel is 1.0 points more accurate than the untrained one on "
+      "average, but the difference is within the split-to-split noise",
+      "significantly less accurate than the tuned RBF SVM"]),
+    ((-0.01, 0.4, 0.8), (-0.1, 0.001, 0.003), (0.01, 0.5, 0.8),
+     ["Learning did not help: the chosen kernel is not more accurate than the untrained"]),
     ((-0.1, 0.001, 0.003), (0.1, None, None), (0.1, 0.04, 0.08),
-     ["significantly less accurate than the untrained",
+     ["Learning hurt: the chosen kernel is significantly less accurate than the untrained",
       "not significantly different from the tuned RBF SVM (+0.100, Holm-adjusted p = n/a",
       "not significantly different from the linear SVM"]),
 ])
@@ -386,6 +391,8 @@ def test_selection_section_lists_candidates_and_the_choice(new_run):
         assert f"{mean} ± {sd}" in section
     assert section.count("<td>chosen</td>") == 1
     assert "Chosen: full" in section and "one-standard-error" in section
+    # the paired gain over the untrained encoding, when the run recorded it
+    assert "gain over untrained, same folds" in section and "+0.150 ± 0.021" in section
 
 
 def test_hardware_table_has_one_row_per_shot_count(new_run):

@@ -18,7 +18,8 @@ from hilbertune.kernels import projected_gram, quantum_gram
 from hilbertune.pipeline import holm_adjust
 from hilbertune.selection import (Candidate, CandidateScore, SelectionSettings,
                                   candidates_for, corrected_standard_error, learn_and_select,
-                                  one_standard_error_choice, repeats_for, trajectory_steps)
+                                  one_standard_error_choice, paired_gain, repeats_for,
+                                  trajectory_steps)
 from hilbertune.training import TrainingSettings, train_encoding
 
 
@@ -62,7 +63,39 @@ def test_best_or_untrained_matches_a_hand_computation():
                                       score("b", 0.8, 0.01)], "best_or_untrained") == (0, 0)
 
 
-@pytest.mark.parametrize("rule", ["one_standard_error", "best_or_untrained"])
+def folds_score(name, accuracies, scope="full"):
+    acc = np.asarray(accuracies, float)
+    return CandidateScore(Candidate(name, scope, "", 0), 1, tuple(acc), float(acc.mean()),
+                          float(acc.std(ddof=1)), corrected_standard_error(acc, 5))
+
+
+def test_paired_rule_matches_a_hand_computation_and_scipy():
+    # A learned candidate 4 points above the untrained one on every fold: the paired
+    # difference has no spread (gain 0.04, standard error 0), so it is kept, although the
+    # unpaired rule keeps the untrained one: learned mean 0.84 - its corrected se
+    # 0.0791 * sqrt(1/5 + 1/4) = 0.053 is below the untrained 0.80 (by hand).
+    untrained = folds_score("untrained", [0.70, 0.80, 0.90, 0.75, 0.85], "untrained")
+    steady = folds_score("steady", [0.74, 0.84, 0.94, 0.79, 0.89])
+    assert paired_gain(steady, untrained, 5) == pytest.approx((0.04, 0.0), abs=1e-12)
+    assert one_standard_error_choice([untrained, steady], "paired", 5) == (1, 1)
+    assert one_standard_error_choice([untrained, steady], "best_or_untrained") == (1, 0)
+    # Differences (+0.10, -0.06, +0.08, -0.04, +0.02): mean 0.02, sd sqrt(0.02 / 4) = 0.0707,
+    # corrected se 0.0707 * sqrt(1/5 + 1/4) = 0.0474 > 0.02 (by hand): untrained kept.
+    noisy = folds_score("noisy", [0.80, 0.74, 0.98, 0.71, 0.87])
+    gain, se = paired_gain(noisy, untrained, 5)
+    assert (gain, se) == pytest.approx((0.02, math.sqrt(0.005) * math.sqrt(0.45)), abs=1e-12)
+    assert one_standard_error_choice([untrained, noisy], "paired", 5) == (1, 0)
+    # gain / se is the corrected resampled t-statistic of Nadeau & Bengio (Machine Learning
+    # 52, 239, 2003): scipy.stats.ttest_rel's t times sqrt((1/J) / (1/J + 1/(K-1))).
+    from scipy import stats
+
+    t = stats.ttest_rel(noisy.fold_accuracies, untrained.fold_accuracies).statistic
+    assert gain / se == pytest.approx(t * math.sqrt(0.2 / 0.45), rel=1e-9)
+    with pytest.raises(ValueError, match="folds"):
+        one_standard_error_choice([untrained, noisy], "paired")
+
+
+@pytest.mark.parametrize("rule", ["one_standard_error", "best_or_untrained", "paired"])
 @settings(max_examples=200, deadline=None)
 @given(st.lists(st.lists(st.integers(0, 10), min_size=3, max_size=3), min_size=2, max_size=6))
 def test_the_choice_is_never_below_the_untrained_kernel_by_more_than_one_standard_error(
@@ -74,7 +107,13 @@ def test_the_choice_is_never_below_the_untrained_kernel_by_more_than_one_standar
         scores.append(CandidateScore(Candidate(f"c{i}", "untrained" if i == 0 else "full", "",
                                                i), i, tuple(acc), float(acc.mean()), sd,
                                      sd / np.sqrt(acc.size)))
-    best, chosen = one_standard_error_choice(scores, rule)
+    best, chosen = one_standard_error_choice(scores, rule, 3)
+    if rule == "paired":  # the best or nothing learned; learned only with paired evidence
+        assert chosen in (0, best)
+        if chosen != 0:
+            gain, se = paired_gain(scores[best], scores[0], 3)
+            assert gain > se and scores[best].mean > scores[0].mean
+        return
     assert scores[chosen].mean >= scores[0].mean - scores[best].se - 1e-12
     assert scores[chosen].mean >= scores[best].mean - scores[best].se - 1e-12
     assert chosen <= best  # never more complex than the best
@@ -274,6 +313,15 @@ def test_fit_summary_lists_candidates_choice_and_corrected_comparisons(tmp_path)
         # 2 folds, drawn 5 times on 42 training rows (at least 200 held-out predictions)
         assert len(c["cv_accuracy_folds"]) == sel["folds"] * sel["repeats"] == 2 * 5
         assert c["cv_accuracy_mean"] == pytest.approx(np.mean(c["cv_accuracy_folds"]))
+        # the paired gain is the mean of the fold-by-fold differences to the untrained
+        # encoding (same folds, same order); none for the untrained encoding itself
+        diff = np.subtract(c["cv_accuracy_folds"], sel["candidates"][0]["cv_accuracy_folds"])
+        if c["name"] == "untrained":
+            assert c["cv_gain_over_untrained"] is None
+        else:
+            assert c["cv_gain_over_untrained"] == pytest.approx(diff.mean())
+            assert c["cv_gain_over_untrained_se"] == pytest.approx(
+                corrected_standard_error(diff, sel["folds"]))
     sig = summary["significance"]
     assert set(sig["comparisons"]) == {"learned_vs_untrained", "quantum_vs_rbf_svm",
                                        "quantum_vs_linear_svm"}
@@ -345,6 +393,17 @@ def test_fit_with_the_best_or_untrained_rule_keeps_the_best_or_nothing_learned(t
     kept_learned = untrained["cv_accuracy_mean"] < (best["cv_accuracy_mean"]
                                                     - best["cv_accuracy_se"] - 1e-12)
     assert (sel["chosen"] != "untrained") == kept_learned
+
+
+def test_fit_with_the_paired_rule_says_why_and_keeps_the_best_or_nothing_learned(tmp_path):
+    out = tmp_path / "run"
+    assert main(["fit", "--qubits", "2", "--seed", "5", "--out", str(out), *TINY,
+                 "--set", "selection.rule='paired'"]) == 0
+    sel = json.loads((out / "summary.json").read_text())["selection"]
+    assert "paired difference" in sel["rule"]
+    assert sel["chosen"] in ("untrained", sel["best"])
+    if sel["best"] != "untrained":
+        assert "paired rule" in sel["reason"] and "standard error of the paired" in sel["reason"]
 
 
 def test_fit_on_reduced_features_also_compares_with_svms_on_every_input_column(tmp_path):

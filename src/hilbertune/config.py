@@ -123,13 +123,15 @@ SCHEMA = {
                   "stratified inner folds on the training part"),
         "repeats": (0, int, _NON_NEGATIVE, "times the inner K-fold split is drawn (0 = "
                     "enough for 200 held-out predictions per candidate, at most 5)"),
-        "rule": ("one_standard_error", str, _one_of("one_standard_error",
-                                                    "best_or_untrained", "paired", "best"),
-                 "how a candidate is chosen: the simplest within one standard error of the "
-                 "best (Hastie et al. 2009, 7.10); the best unless the untrained encoding is "
-                 "within one standard error of it; the best if its fold-by-fold gain over "
+        "rule": ("paired", str, _one_of("paired", "one_standard_error",
+                                        "best_or_untrained", "best"),
+                 "how a candidate is chosen: paired = the best if its fold-by-fold gain over "
                  "the untrained encoding exceeds one standard error of that paired "
-                 "difference; or the best mean"),
+                 "difference (Nadeau & Bengio 2003), else the untrained encoding; "
+                 "one_standard_error = the simplest within one standard error of the best "
+                 "(Hastie et al. 2009, 7.10); best_or_untrained = the best unless the "
+                 "untrained encoding is within one standard error of it; best = the best "
+                 "mean"),
     },
     "svm": {
         "C": (0.0, float, _NON_NEGATIVE, "SVM regularization; 0 = tuned by cross-validation"),

@@ -3,8 +3,8 @@
 Data flow inside ``fit``: validate (scikit-learn rules) -> build the encoding for the number
 of features -> learn and choose the encoding (``selection.learn_and_select``: the untrained
 encoding, rescaled bandwidths and trained encodings, compared by nested inner
-cross-validation; a learned one is kept only when it beats the untrained one by more than
-one standard error) or, with ``select=False``, one ``training.train_encoding`` -> fidelity
+cross-validation; a learned one is kept only when, on the same inner folds, it beats the
+untrained one by more than one standard error of the paired difference) or, with ``select=False``, one ``training.train_encoding`` -> fidelity
 Gram of the training data with the chosen parameters -> C by stratified CV
 (``training.tune_svm_c``) unless given -> ``SVC(kernel="precomputed")``. ``predict`` /
 ``decision_function`` compute the Gram between new rows and the training rows. Works with
@@ -84,9 +84,10 @@ class EncodingClassifier(ClassifierMixin, BaseEstimator):
       select: True (default) = learn several candidates and keep the one chosen by nested
         inner cross-validation on the training rows (``hilbertune.selection``): the untrained
         encoding, its bandwidth rescaled, and full training with ``objective`` and ridge LOO
-        at 1/4 of ``steps`` and at the end; a learned one is kept only when it beats the
-        simplest by more than one standard error, so learning does not make the kernel
-        worse than not learning. False = train once with ``objective`` and keep the result
+        at 1/4 of ``steps`` and at the end; the best of them is kept only when, fold by fold,
+        it beats the untrained encoding by more than one standard error of the paired
+        difference (``selection.rule`` "paired"), a guard against learning that makes the
+        kernel worse than not learning. False = train once with ``objective`` and keep the result
         (about 12 times faster, no such guard).
       selection_options: dict of ``hilbertune.selection.SelectionSettings`` fields, e.g.
         {"folds": 3, "repeats": 1, "rule": "best"}; None = the defaults. The inner folds are
@@ -261,7 +262,9 @@ class EncodingClassifier(ClassifierMixin, BaseEstimator):
             self.C_ = choice.C
         else:
             self.C_ = float(self.C)
-        self.svm_ = SVC(kernel="precomputed", C=self.C_).fit(gram, y)
+        # break_ties: with three or more classes predict is the argmax of decision_function
+        # (scikit-learn's one-vs-one votes can tie; then SVC would take the first class)
+        self.svm_ = SVC(kernel="precomputed", C=self.C_, break_ties=True).fit(gram, y)
         return self
 
     def _new_rows(self, X):

@@ -413,14 +413,22 @@ RULE_TEXT = {
 
 def selection_summary(selection) -> dict:
     """JSON-able account of the candidates, their inner-CV accuracy and the choice."""
+    from hilbertune.selection import paired_gain
+
     rows = []
+    untrained = selection.scores[0]
     for s in selection.scores:
         c = s.candidate
+        gain, gain_se = paired_gain(s, untrained, selection.folds)
         row = {"name": c.name, "scope": c.scope, "objective": c.objective or None,
                "steps": c.steps, "bandwidth_factor": c.factor, "description": _describe(c),
                "trainable_parameters": s.trainable_parameters,
                "cv_accuracy_mean": s.mean, "cv_accuracy_sd": s.sd, "cv_accuracy_se": s.se,
-               "cv_accuracy_folds": list(s.fold_accuracies)}
+               "cv_accuracy_folds": list(s.fold_accuracies),
+               # fold-by-fold gain over the untrained encoding on the same inner folds
+               # (what the "paired" rule weighs); None for the untrained encoding itself
+               "cv_gain_over_untrained": None if s is untrained else gain,
+               "cv_gain_over_untrained_se": None if s is untrained else gain_se}
         rows.append(row)
     chosen = selection.chosen_score
     return {"rule": RULE_TEXT.get(selection.rule, selection.rule),
