@@ -15,6 +15,8 @@ import subprocess
 import sys
 from pathlib import Path
 
+import numpy as np
+
 ROOT = Path(__file__).resolve().parents[1]
 
 
@@ -126,3 +128,28 @@ def test_rule_check_round_one_replays_to_its_committed_table(tmp_path):
     assert done.returncode == 0, done.stderr[-2000:]
     assert "adopt best_or_untrained: False" in done.stdout
     assert (tmp_path / "rule_check.md").read_text() == (results / "rule_check.md").read_text()
+
+
+def test_readme_pooled_figures_are_those_of_the_committed_results():
+    # the README's table of rules over every evaluation is copied by hand: recompute it
+    # from the committed raw results so that a rerun or an edit cannot leave it stale
+    import importlib.util
+
+    spec = importlib.util.spec_from_file_location("rule_check",
+                                                  ROOT / "experiments" / "rule_check.py")
+    module = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(module)
+    table = module.pooled(ROOT / "experiments" / "results")
+    readme = (ROOT / "README.md").read_text()
+    assert f"{len(table)} datasets" in readme
+    assert f"{sum(r['seeds'] for r in table.values())} splits in all" in readme
+    for rule, label in (("paired", "`paired` (default)"),
+                        ("one_standard_error", "`one_standard_error` (default before)"),
+                        ("best", "`best` (no guard)")):
+        gains = [r[rule] for r in table.values()]
+        gaps = [r["rbf_svm"] - r["untrained"] - r[rule] for r in table.values()]
+        row = (f"| {label} | {100 * min(gains):+.1f} | {100 * float(np.mean(gains)):+.1f} | "
+               f"{sum(g >= 0.01 - 1e-9 for g in gains)} of {len(table)} | "
+               f"{sum(g < -0.005 - 1e-9 for g in gains)} | "
+               f"{100 * float(np.median(gaps)):.1f} pt |")
+        assert row in readme, row
