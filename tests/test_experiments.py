@@ -100,6 +100,16 @@ def test_fit_benchmark_runs_and_reports_every_stage(tmp_path):
         assert math.isfinite(report[ratio]) and report[ratio] > 0
 
 
+def _rule_check_module():
+    import importlib.util
+
+    spec = importlib.util.spec_from_file_location("rule_check",
+                                                  ROOT / "experiments" / "rule_check.py")
+    module = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(module)
+    return module
+
+
 def test_rule_check_runs_and_states_its_decision(tmp_path):
     out = _run("rule_check.py", "--out", tmp_path)
     raw = json.loads((tmp_path / "rule_check_round2.json").read_text())
@@ -107,12 +117,7 @@ def test_rule_check_runs_and_states_its_decision(tmp_path):
     table = (tmp_path / "rule_check_round2.md").read_text()
     assert "## Decision" in table and "says nothing about hardware" in table
     # the replayed one-standard-error choice is the one learn_and_select recorded
-    import importlib.util
-
-    spec = importlib.util.spec_from_file_location("rule_check",
-                                                  ROOT / "experiments" / "rule_check.py")
-    module = importlib.util.module_from_spec(spec)
-    spec.loader.exec_module(module)
+    module = _rule_check_module()
     entry = raw["entries"][0]
     assert module.choose(entry["candidates"], "one_standard_error")["name"] == entry["chosen"]
 
@@ -133,12 +138,7 @@ def test_rule_check_round_one_replays_to_its_committed_table(tmp_path):
 def test_readme_pooled_figures_are_those_of_the_committed_results():
     # the README's table of rules over every evaluation is copied by hand: recompute it
     # from the committed raw results so that a rerun or an edit cannot leave it stale
-    import importlib.util
-
-    spec = importlib.util.spec_from_file_location("rule_check",
-                                                  ROOT / "experiments" / "rule_check.py")
-    module = importlib.util.module_from_spec(spec)
-    spec.loader.exec_module(module)
+    module = _rule_check_module()
     table = module.pooled(ROOT / "experiments" / "results")
     readme = (ROOT / "README.md").read_text()
     assert f"{len(table)} datasets" in readme

@@ -381,29 +381,28 @@ def test_rescaled_candidates_multiply_the_untrained_bandwidth_and_come_before_tr
     assert all(c.scope != "rescaled" for c in candidates_for(blueprint, frozen, chosen))
 
 
-def test_fit_with_the_best_or_untrained_rule_keeps_the_best_or_nothing_learned(tmp_path):
+def _learned_kept_by_best_or_untrained(best, untrained):
+    return untrained["cv_accuracy_mean"] < best["cv_accuracy_mean"] - best["cv_accuracy_se"] - 1e-12
+
+
+def _learned_kept_by_paired(best, untrained):
+    return (best["cv_gain_over_untrained"] is not None
+            and best["cv_gain_over_untrained"] > best["cv_gain_over_untrained_se"] + 1e-12)
+
+
+@pytest.mark.parametrize("rule, rule_words, kept", [
+    ("best_or_untrained", "two levels of complexity", _learned_kept_by_best_or_untrained),
+    ("paired", "paired difference", _learned_kept_by_paired)])
+def test_fit_keeps_the_best_or_nothing_learned_as_its_rule_says(tmp_path, rule, rule_words,
+                                                                 kept):
     out = tmp_path / "run"
     assert main(["fit", "--qubits", "2", "--seed", "5", "--out", str(out), *TINY,
-                 "--set", "selection.rule='best_or_untrained'"]) == 0
+                 "--set", f"selection.rule='{rule}'"]) == 0
     sel = json.loads((out / "summary.json").read_text())["selection"]
-    assert "two levels of complexity" in sel["rule"]
+    assert rule_words in sel["rule"]
     assert sel["chosen"] in ("untrained", sel["best"])
     by_name = {c["name"]: c for c in sel["candidates"]}
-    best, untrained = by_name[sel["best"]], by_name["untrained"]
-    kept_learned = untrained["cv_accuracy_mean"] < (best["cv_accuracy_mean"]
-                                                    - best["cv_accuracy_se"] - 1e-12)
-    assert (sel["chosen"] != "untrained") == kept_learned
-
-
-def test_fit_with_the_paired_rule_says_why_and_keeps_the_best_or_nothing_learned(tmp_path):
-    out = tmp_path / "run"
-    assert main(["fit", "--qubits", "2", "--seed", "5", "--out", str(out), *TINY,
-                 "--set", "selection.rule='paired'"]) == 0
-    sel = json.loads((out / "summary.json").read_text())["selection"]
-    assert "paired difference" in sel["rule"]
-    assert sel["chosen"] in ("untrained", sel["best"])
-    if sel["best"] != "untrained":
-        assert "paired rule" in sel["reason"] and "standard error of the paired" in sel["reason"]
+    assert (sel["chosen"] != "untrained") == kept(by_name[sel["best"]], by_name["untrained"])
 
 
 def test_fit_on_reduced_features_also_compares_with_svms_on_every_input_column(tmp_path):

@@ -4,9 +4,10 @@ Data flow inside ``fit``: validate (scikit-learn rules) -> build the encoding fo
 of features -> learn and choose the encoding (``selection.learn_and_select``: the untrained
 encoding, rescaled bandwidths and trained encodings, compared by nested inner
 cross-validation; a learned one is kept only when, on the same inner folds, it beats the
-untrained one by more than one standard error of the paired difference) or, with ``select=False``, one ``training.train_encoding`` -> fidelity
-Gram of the training data with the chosen parameters -> C by stratified CV
-(``training.tune_svm_c``) unless given -> ``SVC(kernel="precomputed")``. ``predict`` /
+untrained one by more than one standard error of the paired difference) or, with
+``select=False``, one ``training.train_encoding`` -> fidelity Gram of the training data
+with the chosen parameters -> C by stratified CV (``training.tune_svm_c``) unless given ->
+``SVC(kernel="precomputed")``. ``predict`` /
 ``decision_function`` compute the Gram between new rows and the training rows. Works with
 ``clone``, ``Pipeline`` and ``GridSearchCV``.
 """
