@@ -183,7 +183,7 @@ def run_entry(name, qubits, loader, seed, settings) -> dict:
     from hilbertune import data, diagnostics
     from hilbertune.encodings import build_encoding
     from hilbertune.kernels import quantum_gram
-    from hilbertune.selection import SelectionSettings, learn_and_select
+    from hilbertune.selection import MAX_REPEATS, SelectionSettings, learn_and_select
     from hilbertune.training import TrainingSettings
 
     X, y = loader()
@@ -198,11 +198,15 @@ def run_entry(name, qubits, loader, seed, settings) -> dict:
                                entangler_gate=enc["entangler_gate"], axes=tuple(enc["axes"]))
     training = TrainingSettings(**settings["training"])
     sel = settings["selection"]
+    # "min_predictions" (rule_check round 3 only): repeats of the inner split as the tool's
+    # automatic rule would draw them with that many held-out predictions per candidate
+    repeats = (0 if "min_predictions" not in sel else
+               min(MAX_REPEATS, max(1, math.ceil(sel["min_predictions"] / len(ytr)))))
     selection_settings = SelectionSettings(scopes=tuple(sel["scopes"]),
                                            objectives=tuple(sel["objectives"]),
                                            trajectory=tuple(sel["trajectory"]),
                                            bandwidth_factors=tuple(sel["bandwidth_factors"]),
-                                           folds=sel["folds"],
+                                           folds=sel["folds"], repeats=repeats,
                                            # the rule of the recorded runs (the default
                                            # until rule_check round 2); analyses replay any
                                            rule="one_standard_error")
