@@ -16,6 +16,7 @@ import sys
 from pathlib import Path
 
 import numpy as np
+import pytest
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -110,11 +111,12 @@ def _rule_check_module():
     return module
 
 
-def test_rule_check_runs_and_states_its_decision(tmp_path):
-    out = _run("rule_check.py", "--out", tmp_path)
-    raw = json.loads((tmp_path / "rule_check_round2.json").read_text())
-    assert len(raw["entries"]) == 1 and "adopt paired:" in out
-    table = (tmp_path / "rule_check_round2.md").read_text()
+@pytest.mark.parametrize("round_, proposed", [(2, "paired"), (3, "one_objective")])
+def test_rule_check_runs_and_states_its_decision(tmp_path, round_, proposed):
+    out = _run("rule_check.py", "--round", round_, "--out", tmp_path)
+    raw = json.loads((tmp_path / f"rule_check_round{round_}.json").read_text())
+    assert len(raw["entries"]) == 1 and f"adopt {proposed}:" in out
+    table = (tmp_path / f"rule_check_round{round_}.md").read_text()
     assert "## Decision" in table and "says nothing about hardware" in table
     # the replayed one-standard-error choice is the one learn_and_select recorded
     module = _rule_check_module()
