@@ -25,6 +25,25 @@ def test_manifest_verifies_and_detects_a_modified_file(tmp_path):
         artifacts.verify_run(run)
 
 
+def test_a_rebuilt_file_is_recorded_only_when_every_other_file_checks_out(tmp_path):
+    import hashlib
+
+    run = _make_run(tmp_path)
+    (run / "a.txt").write_text("rebuilt by a newer version\n")
+    with pytest.raises(ArtifactError, match="a.txt .* was modified"):
+        artifacts.verify_run(run)
+    assert artifacts.verify_run(run, rebuilt=("a.txt",))["seed"] == 3
+    manifest = artifacts.record_rebuilt(run, "a.txt")
+    # the new digest is the file's SHA-256 (hashlib), and the sealed manifest verifies
+    assert manifest["artifacts"]["a.txt"] == hashlib.sha256(
+        b"rebuilt by a newer version\n").hexdigest()
+    artifacts.verify_run(run)
+    # any other modified file still refuses the run, rebuilt or not
+    (run / "b.npz").write_bytes(b"tampered")
+    with pytest.raises(ArtifactError, match="b.npz .* was modified"):
+        artifacts.record_rebuilt(run, "a.txt")
+
+
 def test_missing_artifact_and_newer_format_are_refused(tmp_path):
     run = _make_run(tmp_path)
     (run / "b.npz").unlink()

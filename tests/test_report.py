@@ -251,6 +251,16 @@ def test_quantum_is_called_more_accurate_only_when_significant_and_positive(kern
     assert better == (p_holm is not None and p_holm < ALPHA and mean > 0)
 
 
+def test_learning_verdict_counts_the_splits_that_replaced_the_untrained_kernel(kernels):
+    summary = new_summary(kernels, learning=(0.02, 0.3, 0.6))
+    summary["significance"]["chosen_per_repeat"] = ["full", "untrained", "rescaled x0.5",
+                                                    "untrained", "full"]
+    assert headline(summary)["learning_verdict"].endswith(
+        "Inner cross-validation replaced the untrained kernel on 3 of 5 splits.")
+    del summary["significance"]["chosen_per_repeat"]  # older runs: no count, no error
+    assert "replaced the untrained" not in headline(summary)["learning_verdict"]
+
+
 def test_selection_of_the_untrained_kernel_says_learning_did_not_help(kernels):
     summary = new_summary(kernels, learning=(0.0, 1.0, 1.0))
     summary["selection"]["chosen"] = "untrained"

@@ -172,10 +172,24 @@ def update_manifest(run_dir, **fields) -> dict:
     return _seal_manifest(run_dir, manifest)
 
 
-def verify_run(run_dir) -> dict:
+def record_rebuilt(run_dir, name: str) -> dict:
+    """Record the new digest of a derived artifact that was written again (the report,
+    rebuilt by a newer version) in the run's manifest, after checking every other file,
+    and seal the manifest again. Without this the next check would call the run modified.
+    """
+    run_dir = Path(run_dir)
+    manifest = verify_run(run_dir, rebuilt=(name,))
+    if name in manifest["artifacts"]:
+        manifest["artifacts"][name] = sha256_file(run_dir / name)
+    return _seal_manifest(run_dir, manifest)
+
+
+def verify_run(run_dir, rebuilt=()) -> dict:
     """Check a run directory against its manifest; returns the manifest.
 
     Raises ArtifactError naming the first missing or modified file, or a newer format.
+    Files named in ``rebuilt`` (derived ones about to be written again, e.g. the report)
+    are not checked.
     """
     run_dir = Path(run_dir)
     if run_dir.is_file():
@@ -217,6 +231,8 @@ def verify_run(run_dir) -> dict:
             raise ArtifactError(f"{MANIFEST} in {str(run_dir)!r} lists {name!r}, which is not "
                                 "a file of the run directory; restore the manifest or rerun")
         file = run_dir / name
+        if name in rebuilt:
+            continue
         if not file.is_file():
             raise ArtifactError(f"{name} is missing from {str(run_dir)!r}; restore it or rerun "
                                 "the fit")

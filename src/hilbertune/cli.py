@@ -236,10 +236,15 @@ def _cmd_report(args, console):
     from hilbertune.report import build_report
     from hilbertune.runs import load_run
 
-    load_run(args.run_dir)  # every check that predict and export make, pickle included
+    from hilbertune.artifacts import record_rebuilt
+
+    # every check that predict and export make, but for the report itself: it is derived
+    # from the other files, and rebuilding it is how a run gets a newer version's report
+    load_run(args.run_dir, rebuilt=("report.html",))
     with rundir.exclusive(args.run_dir, option=None):
-        load_run(args.run_dir)  # and again under the lock: nobody replaced it meanwhile
+        load_run(args.run_dir, rebuilt=("report.html",))  # again under the lock
         path = build_report(args.run_dir)
+        record_rebuilt(args.run_dir, "report.html")  # predict, export, reproduce accept it
     console.say(f"Report rebuilt: {path}")
     return {"report": str(path)}
 

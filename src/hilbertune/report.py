@@ -154,6 +154,17 @@ def _comparisons(sig: dict) -> list:
 
 
 def _learning_verdict(summary: dict, tests: dict) -> str:
+    verdict = _learning_answer(summary, tests)
+    sig = summary.get("significance") if isinstance(summary.get("significance"), dict) else {}
+    chosen = sig.get("chosen_per_repeat")
+    if isinstance(chosen, list) and chosen:
+        kept = sum(name != "untrained" for name in chosen)
+        verdict += (f" Inner cross-validation replaced the untrained kernel on {kept} of "
+                    f"{len(chosen)} splits.")
+    return verdict
+
+
+def _learning_answer(summary: dict, tests: dict) -> str:
     selection = summary.get("selection") if isinstance(summary.get("selection"), dict) else {}
     chosen = selection.get("chosen")
     scopes = {c.get("name"): c.get("scope") for c in selection.get("candidates", ())

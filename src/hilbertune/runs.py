@@ -717,8 +717,10 @@ def _map_retired_names(user: dict) -> list:
     return notes
 
 
-def load_run(run_dir):
+def load_run(run_dir, rebuilt=()):
     """Verified artifacts of a finished run: (config, params, arrays, summary).
+
+    ``rebuilt``: derived files about to be written again, not checked (``verify_run``).
 
     A config.toml written before a rename is translated explicitly (``_map_retired_names``);
     the notes go to ``summary["mapped_names"]`` (absent when nothing was mapped).
@@ -726,7 +728,7 @@ def load_run(run_dir):
     from hilbertune import config as cfg
 
     run_dir = Path(run_dir)
-    manifest = artifacts.verify_run(run_dir)
+    manifest = artifacts.verify_run(run_dir, rebuilt=rebuilt)
     unlisted = [name for name in ("config.toml", "params.npz", "summary.json")
                 if name not in manifest["artifacts"]]
     if unlisted:
