@@ -233,10 +233,9 @@ def _cmd_predict(args, console):
 
 def _cmd_report(args, console):
     from hilbertune import rundir
+    from hilbertune.artifacts import record_rebuilt
     from hilbertune.report import build_report
     from hilbertune.runs import load_run
-
-    from hilbertune.artifacts import record_rebuilt
 
     # every check that predict and export make, but for the report itself: it is derived
     # from the other files, and rebuilding it is how a run gets a newer version's report

@@ -88,8 +88,8 @@ class EncodingClassifier(ClassifierMixin, BaseEstimator):
         at 1/4 of ``steps`` and at the end; the best of them is kept only when, fold by fold,
         it beats the untrained encoding by more than one standard error of the paired
         difference (``selection.rule`` "paired"), a guard against learning that makes the
-        kernel worse than not learning. False = train once with ``objective`` and keep the result
-        (about 12 times faster, no such guard).
+        kernel worse than not learning. False = train once with ``objective`` and keep the
+        result (about 12 times faster, no such guard).
       selection_options: dict of ``hilbertune.selection.SelectionSettings`` fields, e.g.
         {"folds": 3, "repeats": 1, "rule": "best"}; None = the defaults. The inner folds are
         lowered to the smallest class count when a class has fewer rows.
