@@ -183,7 +183,7 @@ def run_entry(name, qubits, loader, seed, settings) -> dict:
     from hilbertune import data, diagnostics
     from hilbertune.encodings import build_encoding
     from hilbertune.kernels import quantum_gram
-    from hilbertune.selection import MAX_REPEATS, SelectionSettings, learn_and_select
+    from hilbertune.selection import SelectionSettings, learn_and_select, repeats_for
     from hilbertune.training import TrainingSettings
 
     X, y = loader()
@@ -201,7 +201,7 @@ def run_entry(name, qubits, loader, seed, settings) -> dict:
     # "min_predictions" (rule_check round 3 only): repeats of the inner split as the tool's
     # automatic rule would draw them with that many held-out predictions per candidate
     repeats = (0 if "min_predictions" not in sel else
-               min(MAX_REPEATS, max(1, math.ceil(sel["min_predictions"] / len(ytr)))))
+               repeats_for(len(ytr), SelectionSettings(), sel["min_predictions"]))
     selection_settings = SelectionSettings(scopes=tuple(sel["scopes"]),
                                            objectives=tuple(sel["objectives"]),
                                            trajectory=tuple(sel["trajectory"]),

@@ -87,7 +87,6 @@ from __future__ import annotations
 
 import argparse
 import json
-import math
 import statistics
 import sys
 import time
@@ -263,10 +262,10 @@ def policy_candidates(entry: dict, policy: str, folds: int) -> list:
     """Round 3: the recorded candidates a policy would have had, scored on the inner folds
     it would have drawn (the first draws of the recorded ones; a draw's folds depend only on
     the seed and the draw's index, so the replay is exact)."""
-    from hilbertune.selection import MAX_REPEATS, corrected_standard_error
+    from hilbertune.selection import SelectionSettings, corrected_standard_error, repeats_for
 
     names, predictions = ROUND3[policy]
-    draws = min(MAX_REPEATS, max(1, math.ceil(predictions / entry["n_train"])))
+    draws = repeats_for(entry["n_train"], SelectionSettings(), predictions)
     out = []
     for c in entry["candidates"]:
         if names is not None and c["name"] not in names:

@@ -70,11 +70,13 @@ MIN_PREDICTIONS = 200
 MAX_REPEATS = 5
 
 
-def repeats_for(n_rows: int, settings: "SelectionSettings") -> int:
-    """Repeats of the inner K-fold split for a training part of ``n_rows`` rows."""
+def repeats_for(n_rows: int, settings: "SelectionSettings",
+                min_predictions: int = MIN_PREDICTIONS) -> int:
+    """Repeats of the inner K-fold split for a training part of ``n_rows`` rows
+    (``min_predictions``: held-out predictions per candidate that automatic repeats reach)."""
     if settings.repeats:
         return int(settings.repeats)
-    return int(min(MAX_REPEATS, max(1, math.ceil(MIN_PREDICTIONS / max(n_rows, 1)))))
+    return int(min(MAX_REPEATS, max(1, math.ceil(min_predictions / max(n_rows, 1)))))
 
 
 def corrected_standard_error(fold_accuracies, folds: int) -> float:
